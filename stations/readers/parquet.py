@@ -1,0 +1,179 @@
+"""Parquet files already in the record layout, e.g. an export of the store or of another tool.
+
+The file must hold every column of :data:`stations.schema.INPUT_COLUMNS` with the Arrow type of
+:data:`stations.schema.RECORD_SCHEMA`; extra columns (the store's ``batch_id``,
+``ingest_time``, ``revision``) are ignored. The schema is checked with ``pq.read_schema`` before
+any data is read (STYLE item 14). A few encodings that hold exactly the same values are
+accepted and cast: ``large_string``/``string_view``/dictionary-encoded text for ``string``
+(pandas writes those), a timestamp in s, ms, us or ns with time zone UTC for ``origin_time``
+(ns only if no value has sub-microsecond digits), and the ``null`` type for an all-empty column.
+
+===================== ================================= ==========================================
+column                type (unit)                       notes
+===================== ================================= ==========================================
+event_id              string                            as in the file
+origin_time           timestamp[us, UTC]                see above for other units
+event_latitude, ...   double (deg, km, s, ...)          units of RECORD_SCHEMA field metadata
+station_id            string ``NET.STA.LOC``            re-checked, canonical upper case
+magnitude_type        string                            canonical name or unambiguous alias
+detected, clipped     bool                              null read as true / false
+source_file,          string                            **replaced**: the Parquet path and
+source_location                                         ``"row N"`` (1-based), i.e. where magfuse
+                                                        read the row
+===================== ================================= ==========================================
+
+Rows go through :func:`stations.validation.validate_records` like those of every other format.
+
+Examples
+--------
+>>> import tempfile
+>>> from pathlib import Path
+>>> from stations.readers.csv import read_csv, template_path
+>>> from stations.readers.parquet import read_parquet, write_parquet
+>>> records = read_csv(template_path()).records
+>>> target = Path(tempfile.mkdtemp()) / "export.parquet"
+>>> write_parquet(records, target)
+>>> back = read_parquet(target)
+>>> back.records["source_location"].tolist()
+['row 1', 'row 2']
+>>> back.records["magnitude"].equals(records["magnitude"])
+True
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any, Final
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+from numpy.typing import NDArray
+
+from stations.errors import MalformedFileError
+from stations.readers import _sniff
+from stations.readers.base import ReadResult, display_path
+from stations.schema import INPUT_COLUMNS
+from stations.validation import DEFAULT_MAGNITUDE_RANGE, INPUT_SCHEMA, validate_records
+
+__all__ = ["is_parquet", "read_parquet", "write_parquet"]
+
+_MAGIC: Final = b"PAR1"
+_UTC_NAMES: Final = frozenset({"UTC", "Etc/UTC", "+00:00", "Z"})
+
+
+def is_parquet(path: Any) -> bool:
+    """True if the file starts and ends with the Parquet magic bytes ``PAR1``.
+
+    Never raises; reads 8 bytes; restores the position of a file object.
+    """
+    head = _sniff.head_bytes(path, 4)
+    tail = _sniff.tail_bytes(path, 4)
+    return head == _MAGIC and tail == _MAGIC
+
+
+def _same_values(found: pa.DataType, expected: pa.DataType) -> bool:
+    """True if ``found`` holds the values of ``expected`` without loss of meaning."""
+    if found.equals(expected) or pa.types.is_null(found):
+        return True
+    if pa.types.is_string(expected):
+        if pa.types.is_dictionary(found):
+            found = found.value_type
+        return (
+            pa.types.is_string(found)
+            or pa.types.is_large_string(found)
+            or pa.types.is_string_view(found)
+        )
+    if pa.types.is_timestamp(expected):
+        return pa.types.is_timestamp(found) and found.tz in _UTC_NAMES
+    return False
+
+
+def _check_schema(schema: pa.Schema, shown: str) -> None:
+    for field in INPUT_SCHEMA:
+        idx = schema.get_field_index(field.name)
+        if idx < 0:
+            raise MalformedFileError(
+                f"{shown}: column {field.name!r} is missing (expected {field.type}); write "
+                "every column of stations.schema.INPUT_COLUMNS"
+            )
+        found = schema.field(idx).type
+        if not _same_values(found, field.type):
+            raise MalformedFileError(
+                f"{shown}: column {field.name!r} has type {found}, expected {field.type}; "
+                "cast it before writing"
+            )
+
+
+def read_parquet(
+    path: Path | str, *, magnitude_range: tuple[float, float] = DEFAULT_MAGNITUDE_RANGE
+) -> ReadResult:
+    """Read a Parquet file of records (see the module docstring).
+
+    Parameters
+    ----------
+    path : Path or str
+        The file.
+    magnitude_range : (float, float), default=(-3.0, 10.0)
+        Accepted magnitudes, magnitude units.
+
+    Returns
+    -------
+    ReadResult
+        ``source_location`` is ``"row N"``, 1-based.
+
+    Raises
+    ------
+    MalformedFileError
+        If the file is not readable Parquet, lacks a column, or a column has another type.
+    """
+    shown = display_path(path)
+    try:
+        schema = pq.read_schema(path)
+    except (pa.ArrowException, OSError) as exc:
+        raise MalformedFileError(
+            f"{shown}: not a readable Parquet file ({exc}); write it again"
+        ) from None
+    _check_schema(schema, shown)
+    try:
+        table = pq.read_table(path, columns=list(INPUT_COLUMNS))
+        table = table.cast(INPUT_SCHEMA, safe=True)
+    except (pa.ArrowException, OSError) as exc:
+        raise MalformedFileError(
+            f"{shown}: {str(exc).splitlines()[0]}; write the columns with the types of "
+            "stations.schema.RECORD_SCHEMA"
+        ) from None
+    frame = table.to_pandas()
+    n = len(frame)
+    frame["source_location"] = np.char.add("row ", np.arange(1, n + 1).astype(str)).astype(object)
+    frame = frame.drop(columns=["source_file"])
+
+    def raw(idx: NDArray[np.int64]) -> list[str]:
+        rows = table.take(pa.array(idx)).to_pylist()
+        return [json.dumps(row, default=str) for row in rows]
+
+    records, rejected = validate_records(
+        frame, source_file=shown, raw=raw, magnitude_range=magnitude_range
+    )
+    return ReadResult(source_file=shown, records=records, rejected=rejected)
+
+
+def write_parquet(records: pd.DataFrame, path: Path | str) -> None:
+    """Write records (columns of :data:`~stations.schema.INPUT_COLUMNS`) through the schema.
+
+    Raises
+    ------
+    KeyError
+        If a column of :data:`~stations.schema.INPUT_COLUMNS` is missing.
+    pyarrow.ArrowInvalid
+        If a column cannot be cast to its declared type.
+    """
+    missing = [c for c in INPUT_COLUMNS if c not in records]
+    if missing:
+        raise KeyError(f"records lack column {missing[0]!r}; pass a ReadResult.records frame")
+    table = pa.Table.from_pandas(
+        records[list(INPUT_COLUMNS)], schema=INPUT_SCHEMA, preserve_index=False
+    )
+    pq.write_table(table, path)
