@@ -80,7 +80,7 @@ class EpochConfig(_Section):
 
     enabled: bool = True
     cusum_k: float = Field(0.5, ge=0.0)
-    cusum_h: float = Field(5.0, gt=0.0)
+    cusum_h: float = Field(8.0, gt=0.0)
     min_events_per_epoch: int = Field(20, ge=1)
 
 
