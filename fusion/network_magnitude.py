@@ -90,7 +90,7 @@ from stations.errors import (
     ConvergenceWarning,
     DegenerateDataWarning,
     DomainError,
-    InsufficientDataError,
+    EventNotFoundError,
     ModelNotFoundError,
 )
 
@@ -312,13 +312,13 @@ class FusedMagnitudes:
 
         Raises
         ------
-        InsufficientDataError
+        EventNotFoundError
             If the event is not in this result.
         """
         ids = self.events["event_id"].to_numpy()
         hit = np.flatnonzero(ids == event_id)
         if hit.shape[0] == 0:
-            raise InsufficientDataError(
+            raise EventNotFoundError(
                 f"event {event_id!r} is not in these fused magnitudes; "
                 "check the id or fuse a window that contains it"
             )

@@ -19,6 +19,7 @@ __all__ = [
     "ConvergenceWarning",
     "DegenerateDataWarning",
     "DomainError",
+    "EventNotFoundError",
     "InsufficientDataError",
     "MagfuseError",
     "MalformedFileError",
@@ -64,6 +65,13 @@ class DomainError(MagfuseError, ValueError):
 
 class StationNotFoundError(MagfuseError, KeyError):
     """A station has no metadata valid at the requested time."""
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return str(self.args[0]) if self.args else ""
+
+
+class EventNotFoundError(MagfuseError, KeyError):
+    """An event id is not in the store, the fused magnitudes or the window asked for."""
 
     def __str__(self) -> str:  # KeyError would quote the message
         return str(self.args[0]) if self.args else ""

@@ -29,7 +29,7 @@ from stations.errors import (
     ConfigError,
     DegenerateDataWarning,
     DomainError,
-    InsufficientDataError,
+    EventNotFoundError,
     ModelNotFoundError,
 )
 from tests.reference import network as ref
@@ -737,7 +737,7 @@ def test_network_estimate_object(e1: FusedMagnitudes) -> None:
     assert json.loads(text)["contributions"][1]["station_id"] == "XX.S1."
     with pytest.raises(ConfigError, match="'level'"):
         est.confidence_interval(95)
-    with pytest.raises(InsufficientDataError, match="event 'nope'"):
+    with pytest.raises(EventNotFoundError, match="event 'nope'"):
         e1.event("nope")
     with pytest.raises(dataclasses.FrozenInstanceError):
         est.magnitude = 1.0  # type: ignore[misc]
