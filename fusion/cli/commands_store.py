@@ -1,0 +1,232 @@
+"""``magfuse ingest`` and ``magfuse store``: adapters over :mod:`stations.store` and the readers."""
+
+from __future__ import annotations
+
+import json
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Annotated, Any
+
+import typer
+
+from fusion.cli.common import (
+    ConfigOption,
+    JsonOption,
+    StoreOption,
+    load,
+    print_advisory,
+    store_path,
+)
+
+if TYPE_CHECKING:
+    from config.model import MagfuseConfig
+    from stations.store import IngestReport, StationMagnitudeStore, StoreSummary
+
+__all__ = ["ingest_command", "register", "store_command"]
+
+#: A single file at least this large (bytes) gets a progress bar too.
+LARGE_FILE_BYTES = 64 * 2**20
+
+FormatOption = Annotated[
+    str | None,
+    typer.Option(
+        "--format",
+        help="Reader format of every PATH (default: recognise each file by its content).",
+    ),
+]
+PathsArgument = Annotated[
+    list[Path],
+    typer.Argument(help="Files of station magnitudes; each becomes one batch.", show_default=False),
+]
+
+
+def register(app: typer.Typer) -> None:
+    """Mount ``ingest`` and ``store`` on the ``magfuse`` app."""
+    app.command("ingest")(ingest_command)
+    app.command("store")(store_command)
+
+
+@dataclass(frozen=True, slots=True)
+class _Outcome:
+    """One file's result: a line for stdout, or an error line for stderr."""
+
+    line: str
+    error: bool
+
+
+def _report_line(path: Path, report: IngestReport) -> str:
+    if report.same_content_as is not None:
+        return f"{path}: same content as batch {report.same_content_as}; nothing added"
+    return (
+        f"{path}: {report.accepted} accepted ({report.revised} revised), "
+        f"{report.duplicate} duplicate, {report.quarantined} quarantined; "
+        f"batch {report.batch_id}"
+    )
+
+
+def _read_records(path: Path, fmt: str | None, magnitude_range: tuple[float, float]) -> Any:
+    """The readers' dispatcher (imported here: heavy, and another package's)."""
+    from stations.readers import read_records
+
+    return read_records(path, fmt, magnitude_range=magnitude_range)
+
+
+def _ingest_one(
+    store: StationMagnitudeStore,
+    path: Path,
+    fmt: str | None,
+    cfg: MagfuseConfig,
+    advance: Any,
+) -> _Outcome:
+    """Read and store one file; per-file problems become an error line, store problems raise."""
+    from stations.errors import MagfuseError, StoreBusyError, StoreCorruptError
+    from stations.store import file_digest
+
+    size = _size(path)
+    try:
+        digest = file_digest(path)
+        earlier = store.batch_with_content(digest)
+        if earlier is not None:
+            advance(2 * size)
+            return _Outcome(f"{path}: same content as batch {earlier}; nothing added", False)
+        result = _read_records(path, fmt, (cfg.ingest.magnitude_min, cfg.ingest.magnitude_max))
+        advance(size)
+        report = store.ingest(
+            result.records,
+            result.rejected,
+            source_file=str(result.source_file),
+            content_hash=digest,
+            on_wait=lambda msg: typer.echo(msg, err=True),
+        )
+        advance(size)
+    except (StoreBusyError, StoreCorruptError):
+        raise
+    except MagfuseError as exc:
+        return _Outcome(f"Error: {exc}", True)
+    except IsADirectoryError:
+        return _Outcome(f"Error: {path}: is a folder; pass the files inside it", True)
+    except FileNotFoundError:
+        return _Outcome(f"Error: {path}: file not found; check the path", True)
+    except OSError as exc:
+        return _Outcome(f"Error: {path}: cannot be read ({exc.strerror}); check it", True)
+    return _Outcome(_report_line(path, report), False)
+
+
+def _size(path: Path) -> int:
+    try:
+        return max(path.stat().st_size, 1)
+    except OSError:
+        return 1
+
+
+def ingest_command(
+    paths: PathsArgument,
+    format: FormatOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Add station-magnitude files to the store, one atomic batch per file.
+
+    Prints one line per file with the rows accepted (new revisions among them), duplicates
+    and quarantined rows. A file that cannot be read gets an error line and the others still
+    go in; the exit status is 1 only when no file could be read.
+    """
+    from stations.store import StationMagnitudeStore
+
+    cfg = load(config)
+    st = StationMagnitudeStore.open(
+        store_path(cfg.store.path, store), lock_timeout_s=cfg.store.lock_timeout_s
+    )
+    sizes = [_size(p) for p in paths]
+    outcomes: list[_Outcome] = []
+    if len(paths) > 1 or max(sizes) >= LARGE_FILE_BYTES:
+        with typer.progressbar(length=2 * sum(sizes), label="Ingesting", file=sys.stderr) as bar:
+            outcomes = [_ingest_one(st, p, format, cfg, bar.update) for p in paths]
+    else:
+        outcomes = [_ingest_one(st, p, format, cfg, lambda _n: None) for p in paths]
+    for out in outcomes:
+        typer.echo(out.line, err=out.error)
+    print_advisory()
+    if all(o.error for o in outcomes):
+        raise typer.Exit(code=1)
+
+
+def _fmt_time(value: Any) -> str:
+    return "-" if value is None else f"{value:%Y-%m-%dT%H:%M:%S}Z"
+
+
+def render_summary(s: StoreSummary) -> str:
+    """The summary as a text table for people."""
+    lines = [
+        f"store      {s.root}  (record schema {s.schema_version})",
+        f"batches    {s.batches:,}; data files {s.files:,}; quarantined rows {s.quarantined:,}",
+        f"readings   {s.rows_current:,} current; {s.rows_all:,} counting every revision; "
+        f"{s.revised:,} revised",
+        f"           {s.detected:,} detected; {s.not_detected:,} not detected",
+        f"events     {s.events:,}; stations {s.stations:,}",
+        f"origins    {_fmt_time(s.first_origin_time)} to {_fmt_time(s.last_origin_time)}",
+    ]
+    if s.by_type:
+        head = (
+            "type",
+            "current",
+            "all",
+            "detected",
+            "not det.",
+            "revised",
+            "events",
+            "stations",
+            "first origin",
+            "last origin",
+        )
+        rows = [
+            (
+                t.magnitude_type,
+                f"{t.rows_current:,}",
+                f"{t.rows_all:,}",
+                f"{t.detected:,}",
+                f"{t.not_detected:,}",
+                f"{t.revised:,}",
+                f"{t.events:,}",
+                f"{t.stations:,}",
+                _fmt_time(t.first_origin_time),
+                _fmt_time(t.last_origin_time),
+            )
+            for t in s.by_type
+        ]
+        widths = [max(len(r[i]) for r in (head, *rows)) for i in range(len(head))]
+
+        def fmt(r: tuple[str, ...]) -> str:
+            cells = [r[0].ljust(widths[0])] + [
+                c.rjust(w) for c, w in zip(r[1:], widths[1:], strict=True)
+            ]
+            return "  ".join(cells)
+
+        lines += ["", fmt(head), *(fmt(r) for r in rows)]
+    return "\n".join(lines)
+
+
+def store_command(
+    json_out: JsonOption = False,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Summarise the store: rows, detections, time range, events, stations, revisions.
+
+    Rows are counted per magnitude type, in the current view (latest revision of each
+    reading) and over every revision; also quarantined rows and batches. ``--json`` prints
+    the same figures for machines.
+    """
+    from stations.store import StationMagnitudeStore
+
+    cfg = load(config)
+    st = StationMagnitudeStore.open(
+        store_path(cfg.store.path, store), create=False, lock_timeout_s=cfg.store.lock_timeout_s
+    )
+    summary = st.summary()
+    if json_out:
+        typer.echo(json.dumps(summary.to_dict(), indent=2))
+    else:
+        typer.echo(render_summary(summary))
+    print_advisory()
