@@ -16,6 +16,7 @@ from stations.errors import ConfigError
 
 __all__ = [
     "CensoringConfig",
+    "ComputeConfig",
     "EpochConfig",
     "IngestConfig",
     "LearnConfig",
@@ -45,6 +46,19 @@ class IngestConfig(_Section):
 
     magnitude_min: float = -3.0
     magnitude_max: float = 10.0
+
+
+class ComputeConfig(_Section):
+    """Station magnitudes from amplitudes (``ingest --compute``, ``compute``; IASPEI formulas)."""
+
+    ml_distance_correction: str = "HB87"
+    q_table: str = "GR56-Q"
+    mb_lg_gamma_per_km: float | None = Field(None, ge=0.0)
+    mb_bb_period_range_s: tuple[float, float] = (0.2, 30.0)
+    ms_bb_period_range_s: tuple[float, float] = (2.0, 60.0)
+    allow_out_of_domain: bool = False
+    use_station_elevation: bool = False
+    stations: str = ""
 
 
 class LearnConfig(_Section):
@@ -117,6 +131,7 @@ class MagfuseConfig(_Section):
 
     store: StoreConfig = StoreConfig()
     ingest: IngestConfig = IngestConfig()
+    compute: ComputeConfig = ComputeConfig()
     learn: LearnConfig = LearnConfig()
     pairs: PairConfig = PairConfig()
     epochs: EpochConfig = EpochConfig()

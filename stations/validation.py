@@ -423,10 +423,12 @@ def _magnitude_rules(
     mag = cols["magnitude"]
     has_mag = ~np.isnan(mag)
     span = f"[{low:g}, {high:g}]"
+    # A detection with an amplitude but no magnitude is kept: the ingest step computes its
+    # magnitude (``magfuse ingest --compute``) or quarantines it (stations.ingest).
     reasons.add(
-        detected & ~has_mag,
-        "detection without a magnitude; give the magnitude, or mark the row detected=false "
-        "if the station saw nothing",
+        detected & ~has_mag & np.isnan(cols["amplitude"]),
+        "detection without a magnitude or an amplitude; give the magnitude (or the amplitude "
+        "with --compute), or mark the row detected=false if the station saw nothing",
     )
     with np.errstate(invalid="ignore"):
         out = detected & has_mag & ((mag < low) | (mag > high))

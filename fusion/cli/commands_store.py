@@ -11,9 +11,13 @@ from typing import TYPE_CHECKING, Annotated, Any
 import typer
 
 from fusion.cli.common import (
+    ComputeFlag,
     ConfigOption,
+    DefaultNetworkOption,
     JsonOption,
+    StationsOption,
     StoreOption,
+    compute_setup,
     load,
     print_advisory,
     store_path,
@@ -21,7 +25,8 @@ from fusion.cli.common import (
 
 if TYPE_CHECKING:
     from config.model import MagfuseConfig
-    from stations.store import IngestReport, StationMagnitudeStore, StoreSummary
+    from stations.ingest import IngestOutcome
+    from stations.store import StationMagnitudeStore, StoreSummary
 
 __all__ = ["ingest_command", "register", "store_command"]
 
@@ -55,21 +60,16 @@ class _Outcome:
     error: bool
 
 
-def _report_line(path: Path, report: IngestReport) -> str:
+def _report_line(path: Path, outcome: IngestOutcome) -> str:
+    report = outcome.report
     if report.same_content_as is not None:
         return f"{path}: same content as batch {report.same_content_as}; nothing added"
+    computed = f", {outcome.computed} magnitudes computed" if outcome.computed else ""
     return (
         f"{path}: {report.accepted} accepted ({report.revised} revised), "
-        f"{report.duplicate} duplicate, {report.quarantined} quarantined; "
+        f"{report.duplicate} duplicate, {report.quarantined} quarantined{computed}; "
         f"batch {report.batch_id}"
     )
-
-
-def _read_records(path: Path, fmt: str | None, magnitude_range: tuple[float, float]) -> Any:
-    """The readers' dispatcher (imported here: heavy, and another package's)."""
-    from stations.readers import read_records
-
-    return read_records(path, fmt, magnitude_range=magnitude_range)
 
 
 def _ingest_one(
@@ -78,28 +78,27 @@ def _ingest_one(
     fmt: str | None,
     cfg: MagfuseConfig,
     advance: Any,
+    compute: Any,
+    metadata: Any,
+    default_network: str | None,
 ) -> _Outcome:
     """Read and store one file; per-file problems become an error line, store problems raise."""
     from stations.errors import MagfuseError, StoreBusyError, StoreCorruptError
-    from stations.store import file_digest
+    from stations.ingest import ingest_file
 
     size = _size(path)
     try:
-        digest = file_digest(path)
-        earlier = store.batch_with_content(digest)
-        if earlier is not None:
-            advance(2 * size)
-            return _Outcome(f"{path}: same content as batch {earlier}; nothing added", False)
-        result = _read_records(path, fmt, (cfg.ingest.magnitude_min, cfg.ingest.magnitude_max))
-        advance(size)
-        report = store.ingest(
-            result.records,
-            result.rejected,
-            source_file=str(result.source_file),
-            content_hash=digest,
+        outcome = ingest_file(
+            store,
+            path,
+            format=fmt,
+            magnitude_range=(cfg.ingest.magnitude_min, cfg.ingest.magnitude_max),
+            default_network=default_network,
+            compute=compute,
+            metadata=metadata,
             on_wait=lambda msg: typer.echo(msg, err=True),
         )
-        advance(size)
+        advance(2 * size)
     except (StoreBusyError, StoreCorruptError):
         raise
     except MagfuseError as exc:
@@ -110,7 +109,7 @@ def _ingest_one(
         return _Outcome(f"Error: {path}: file not found; check the path", True)
     except OSError as exc:
         return _Outcome(f"Error: {path}: cannot be read ({exc.strerror}); check it", True)
-    return _Outcome(_report_line(path, report), False)
+    return _Outcome(_report_line(path, outcome), False)
 
 
 def _size(path: Path) -> int:
@@ -123,6 +122,9 @@ def _size(path: Path) -> int:
 def ingest_command(
     paths: PathsArgument,
     format: FormatOption = None,
+    compute: ComputeFlag = False,
+    stations: StationsOption = None,
+    default_network: DefaultNetworkOption = None,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:
@@ -130,11 +132,14 @@ def ingest_command(
 
     Prints one line per file with the rows accepted (new revisions among them), duplicates
     and quarantined rows. A file that cannot be read gets an error line and the others still
-    go in; the exit status is 1 only when no file could be read.
+    go in; the exit status is 1 only when no file could be read. With --compute, rows that
+    carry an amplitude but no magnitude get one from the IASPEI formulas ([compute] section
+    of the configuration); without it they are quarantined.
     """
     from stations.store import StationMagnitudeStore
 
     cfg = load(config)
+    options, metadata = compute_setup(cfg, stations) if compute else (None, None)
     st = StationMagnitudeStore.open(
         store_path(cfg.store.path, store), lock_timeout_s=cfg.store.lock_timeout_s
     )
@@ -142,9 +147,15 @@ def ingest_command(
     outcomes: list[_Outcome] = []
     if len(paths) > 1 or max(sizes) >= LARGE_FILE_BYTES:
         with typer.progressbar(length=2 * sum(sizes), label="Ingesting", file=sys.stderr) as bar:
-            outcomes = [_ingest_one(st, p, format, cfg, bar.update) for p in paths]
+            outcomes = [
+                _ingest_one(st, p, format, cfg, bar.update, options, metadata, default_network)
+                for p in paths
+            ]
     else:
-        outcomes = [_ingest_one(st, p, format, cfg, lambda _n: None) for p in paths]
+        outcomes = [
+            _ingest_one(st, p, format, cfg, lambda _n: None, options, metadata, default_network)
+            for p in paths
+        ]
     for out in outcomes:
         typer.echo(out.line, err=out.error)
     print_advisory()

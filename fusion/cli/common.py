@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -11,6 +12,8 @@ from fusion.advisory import ADVISORY
 
 if TYPE_CHECKING:
     from config.model import MagfuseConfig
+    from stations.formulas import ComputeOptions
+    from stations.metadata import StationMetadata
 
 ConfigOption = Annotated[
     Path | None,
@@ -23,6 +26,33 @@ StoreOption = Annotated[
     typer.Option("--store", help="Store directory (default: [store] path of the configuration)."),
 ]
 JsonOption = Annotated[bool, typer.Option("--json", help="Print JSON for machines.")]
+TypeOption = Annotated[
+    str | None,
+    typer.Option("--type", help="Magnitude type (default: [learn] magnitude_type)."),
+]
+ComputeFlag = Annotated[
+    bool,
+    typer.Option(
+        "--compute",
+        help="Compute station magnitudes from amplitudes where a row has none (IASPEI formulas).",
+    ),
+]
+StationsOption = Annotated[
+    Path | None,
+    typer.Option(
+        "--stations",
+        help="StationXML or station CSV used to fill missing distances "
+        "(default: [compute] stations).",
+        dir_okay=False,
+    ),
+]
+DefaultNetworkOption = Annotated[
+    str | None,
+    typer.Option(
+        "--default-network",
+        help="Network code for stations named without one (IMS1.0, NEIC mchedr).",
+    ),
+]
 
 
 def load(config: Path | None) -> MagfuseConfig:
@@ -30,6 +60,44 @@ def load(config: Path | None) -> MagfuseConfig:
     from config import load_config
 
     return load_config(config)
+
+
+def compute_setup(
+    cfg: MagfuseConfig, stations: Path | None
+) -> tuple[ComputeOptions, StationMetadata | None]:
+    """Compute options from ``[compute]`` and the station metadata to fill distances."""
+    from stations.ingest import build_compute_options
+    from stations.metadata import StationMetadata
+
+    options = build_compute_options(**cfg.compute.model_dump(exclude={"stations"}))
+    path = (
+        stations
+        if stations is not None
+        else (Path(cfg.compute.stations) if cfg.compute.stations else None)
+    )
+    return options, (StationMetadata.read(path) if path is not None else None)
+
+
+def parse_time(text: str | None, option: str) -> datetime | None:
+    """An ISO 8601 time from the command line as an aware UTC datetime (naive means UTC).
+
+    Raises
+    ------
+    ConfigError
+        If ``text`` is not ISO 8601; the message names the option.
+    """
+    if text is None:
+        return None
+    from stations.errors import ConfigError
+
+    try:
+        value = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError:
+        raise ConfigError(
+            f"{option} {text!r} is not an ISO 8601 time; give e.g. 2025-06-01 or "
+            "2025-06-01T12:00:00Z"
+        ) from None
+    return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
 
 
 def store_path(config_store: Path, option: Path | None) -> Path:
