@@ -15,6 +15,7 @@ import pandas as pd
 import pytest
 
 from stations.errors import MalformedFileError
+from stations.ingest import hold_uncomputed
 from stations.readers import read_records
 from stations.readers.csv import (
     CSV_COLUMNS,
@@ -199,12 +200,30 @@ def test_unknown_station_code_is_rejected_with_its_line(tmp_path: Path) -> None:
     assert json.loads(result.rejected["raw"].iloc[0])["station"] == "AB_C"
 
 
-def test_nan_magnitude_of_a_detection_is_rejected(tmp_path: Path) -> None:
-    """Faulty: a detection whose magnitude is the text NaN."""
+def test_nan_magnitude_of_a_detection_is_held_for_computation(tmp_path: Path) -> None:
+    """Faulty: a detection whose magnitude is the text NaN but which carries an amplitude.
+
+    The reader keeps it (``ingest --compute`` can compute the magnitude); the ingest gate
+    quarantines it when nothing computes it.
+    """
     path = _write(tmp_path, _body(_with("magnitude", "NaN")))
     result = read_csv(path)
+    assert len(result.records) == 1 and result.records["magnitude"].isna().all()
+    assert result.records["amplitude"].notna().all()
+    kept, held = hold_uncomputed(result.records, source_file=str(path))
+    assert kept.empty
+    assert "ingest with --compute" in held["reason"].iloc[0]
+
+
+def test_nan_magnitude_without_amplitude_is_rejected(tmp_path: Path) -> None:
+    """Faulty: a detection with neither a magnitude nor an amplitude."""
+    fields = GOOD.split(",")
+    for column in ("magnitude", "amplitude", "amplitude_unit", "period"):
+        fields[CSV_COLUMNS.index(column)] = ""
+    path = _write(tmp_path, _body(",".join(fields)))
+    result = read_csv(path)
     assert result.records.empty
-    assert "detection without a magnitude" in result.rejected["reason"].iloc[0]
+    assert "detection without a magnitude or an amplitude" in result.rejected["reason"].iloc[0]
 
 
 def test_unknown_magnitude_type_is_rejected(tmp_path: Path) -> None:
