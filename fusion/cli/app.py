@@ -55,7 +55,11 @@ def _register() -> None:
 
 
 #: Command modules, each with ``register(app)``; order is the order of ``magfuse --help``.
-_COMMAND_MODULES: tuple[str, ...] = ("commands_store", "commands_compute")
+_COMMAND_MODULES: tuple[str, ...] = (
+    "commands_store",
+    "commands_compute",
+    "commands_model",
+)
 
 
 _register()

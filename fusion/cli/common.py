@@ -12,8 +12,10 @@ from fusion.advisory import ADVISORY
 
 if TYPE_CHECKING:
     from config.model import MagfuseConfig
+    from fusion.model_registry import ModelRegistry
     from stations.formulas import ComputeOptions
     from stations.metadata import StationMetadata
+    from stations.store import StationMagnitudeStore
 
 ConfigOption = Annotated[
     Path | None,
@@ -98,6 +100,24 @@ def parse_time(text: str | None, option: str) -> datetime | None:
             "2025-06-01T12:00:00Z"
         ) from None
     return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+
+def open_store(
+    cfg: MagfuseConfig, option: Path | None, *, create: bool = False
+) -> StationMagnitudeStore:
+    """The station-magnitude store of ``--store`` (or the configuration)."""
+    from stations.store import StationMagnitudeStore
+
+    return StationMagnitudeStore.open(
+        store_path(cfg.store.path, option), create=create, lock_timeout_s=cfg.store.lock_timeout_s
+    )
+
+
+def open_registry(store: StationMagnitudeStore) -> ModelRegistry:
+    """The model registry of a store, writing under the store's lock."""
+    from fusion.model_registry import ModelRegistry
+
+    return ModelRegistry(store.root, lock=store.write_lock)
 
 
 def store_path(config_store: Path, option: Path | None) -> Path:

@@ -1,0 +1,189 @@
+"""``magfuse learn``, ``models``, ``adopt`` and ``rollback``: model versions from the CLI."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import TYPE_CHECKING, Annotated, Any
+
+import typer
+
+from fusion.cli.common import (
+    ConfigOption,
+    JsonOption,
+    StoreOption,
+    TypeOption,
+    load,
+    open_registry,
+    open_store,
+    parse_time,
+    print_advisory,
+)
+
+if TYPE_CHECKING:
+    from fusion.model_registry import ModelVersion
+
+__all__ = ["register"]
+
+
+def register(app: typer.Typer) -> None:
+    """Mount the model-version commands."""
+    app.command("learn")(learn_command)
+    app.command("models")(models_command)
+    app.command("adopt")(adopt_command)
+    app.command("rollback")(rollback_command)
+
+
+AsOfOption = Annotated[
+    str | None,
+    typer.Option(
+        "--as-of",
+        help="End of the learning window, ISO 8601 UTC (default: latest origin time stored).",
+    ),
+]
+HalfLifeOption = Annotated[
+    float | None,
+    typer.Option("--half-life", help="Half-life of the event weights, days ([learn])."),
+]
+WindowOption = Annotated[
+    float | None, typer.Option("--window", help="Hard window, days ([learn]).")
+]
+CsvDirOption = Annotated[
+    Path | None,
+    typer.Option("--csv", help="Also write the station, pair and epoch tables as CSV here."),
+]
+
+
+def _summary_lines(v: ModelVersion) -> list[str]:
+    m = v.meta
+    anchor = m.get("anchor", {})
+    gt = m.get("global_test")
+    lines = [
+        f"candidate  {v.version_id}  (not adopted; adopt with 'magfuse adopt {v.version_id}')",
+        f"window     {m.get('window_start') or '-'} .. {m.get('window_end')}  "
+        f"half-life {m.get('half_life_days'):g} d",
+        f"data       {m.get('n_events'):,} events, {m.get('n_readings'):,} station magnitudes, "
+        f"{m.get('n_nondetections'):,} non-detections",
+        f"stations   {m.get('n_stations')} ({m.get('n_units')} station epochs); "
+        f"{m.get('n_prior_dominated')} prior-dominated, {m.get('n_uncalibrated')} uncalibrated",
+        f"pairs      {m.get('n_pairs_flagged')} correlated of {m.get('n_pairs_tested')} tested; "
+        f"{m.get('n_epoch_splits')} bias steps split into epochs",
+        f"anchor     {anchor.get('kind')}: level {anchor.get('value', float('nan')):+.3f}, "
+        f"calibration uncertainty {anchor.get('se', float('nan')):.3f}",
+        f"fit        {m.get('n_iter')} iterations, "
+        + ("converged" if m.get("converged") else "NOT converged (see warnings)"),
+    ]
+    if gt:
+        lines.append(
+            f"global test of uncorrelated errors: p = {gt['p_value']:.3f} "
+            f"({gt['replicates']} bootstrap replicates)"
+        )
+    return lines
+
+
+def learn_command(
+    type: TypeOption = None,
+    as_of: AsOfOption = None,
+    half_life: HalfLifeOption = None,
+    window: WindowOption = None,
+    csv: CsvDirOption = None,
+    json_out: JsonOption = False,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Learn station biases, error SDs and correlated pairs; store a candidate model.
+
+    The candidate is not adopted: compare it with 'magfuse diff' and switch with
+    'magfuse adopt'. Its station, pair and epoch tables are stored with it (Parquet).
+    """
+    from fusion.learning import learn_candidate
+
+    cfg = load(config)
+    st = open_store(cfg, store)
+    reg = open_registry(st)
+    outcome = learn_candidate(
+        st,
+        reg,
+        cfg,
+        magnitude_type=type,
+        as_of=parse_time(as_of, "--as-of"),
+        half_life_days=half_life,
+        window_days=window,
+    )
+    v = outcome.version
+    if csv is not None:
+        csv.mkdir(parents=True, exist_ok=True)
+        for name in ("stations", "pairs", "epochs"):
+            reg.load_table(v, name).to_csv(csv / f"{v.version_id}-{name}.csv", index=False)
+    if json_out:
+        typer.echo(json.dumps(dict(v.meta), indent=2, default=str))
+    else:
+        typer.echo("\n".join(_summary_lines(v)))
+    print_advisory()
+
+
+def _version_row(v: ModelVersion, active: str | None) -> dict[str, Any]:
+    m = v.meta
+    return {
+        "version": v.version_id,
+        "active": v.version_id == active,
+        "created": v.created,
+        "window_end": m.get("window_end"),
+        "stations": m.get("n_stations"),
+        "pairs": m.get("n_pairs_flagged"),
+        "events": m.get("n_events"),
+        "anchor": (m.get("anchor") or {}).get("kind"),
+    }
+
+
+def models_command(
+    type: TypeOption = None,
+    json_out: JsonOption = False,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """List stored model versions; the active one is marked with '*'."""
+    cfg = load(config)
+    reg = open_registry(open_store(cfg, store))
+    versions = reg.versions(type)
+    actives = {v.magnitude_type: reg.active_id(v.magnitude_type) for v in versions}
+    rows = [_version_row(v, actives[v.magnitude_type]) for v in versions]
+    if json_out:
+        typer.echo(json.dumps(rows, indent=2, default=str))
+        return
+    if not rows:
+        typer.echo("no model versions yet; run 'magfuse learn'")
+        return
+    typer.echo(f"  {'version':<34} {'created':<26} {'window end':<26} stations pairs events")
+    for r in rows:
+        mark = "*" if r["active"] else " "
+        typer.echo(
+            f"{mark} {r['version']:<34} {str(r['created'])[:25]:<26} "
+            f"{str(r['window_end'])[:25]:<26} {r['stations']!s:>8} {r['pairs']!s:>5} "
+            f"{r['events']!s:>6}"
+        )
+
+
+VersionArgument = Annotated[str, typer.Argument(help="Model version id (see 'magfuse models').")]
+
+
+def adopt_command(
+    version: VersionArgument, store: StoreOption = None, config: ConfigOption = None
+) -> None:
+    """Make a model version the active one of its magnitude type (atomic switch)."""
+    cfg = load(config)
+    reg = open_registry(open_store(cfg, store))
+    v = reg.adopt(version)
+    typer.echo(f"active {v.magnitude_type} model: {v.version_id}")
+    print_advisory()
+
+
+def rollback_command(
+    type: TypeOption = None, store: StoreOption = None, config: ConfigOption = None
+) -> None:
+    """Re-activate the model version that was active before the current one."""
+    cfg = load(config)
+    reg = open_registry(open_store(cfg, store))
+    v = reg.rollback(type or cfg.learn.magnitude_type)
+    typer.echo(f"active {v.magnitude_type} model: {v.version_id} (rolled back)")
+    print_advisory()
