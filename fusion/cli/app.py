@@ -59,6 +59,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "commands_store",
     "commands_compute",
     "commands_model",
+    "commands_review",
 )
 
 

@@ -1,0 +1,118 @@
+"""``magfuse event`` and ``magfuse diff``: one event explained; what a candidate would change."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from fusion.cli.common import (
+    ConfigOption,
+    JsonOption,
+    StoreOption,
+    TypeOption,
+    load,
+    open_registry,
+    open_store,
+    print_advisory,
+)
+
+__all__ = ["register"]
+
+
+def register(app: typer.Typer) -> None:
+    """Mount ``event`` and ``diff``."""
+    app.command("event")(event_command)
+    app.command("diff")(diff_command)
+
+
+VersionOption = Annotated[
+    str | None,
+    typer.Option("--version", help="Model version to use (default: the active one)."),
+]
+HtmlOption = Annotated[
+    Path | None, typer.Option("--html", help="Also write a self-contained HTML page here.")
+]
+PngOption = Annotated[Path | None, typer.Option("--png", help="Also write the picture as PNG.")]
+
+
+def event_command(
+    event_id: Annotated[str, typer.Argument(help="Event id as stored.")],
+    type: TypeOption = None,
+    version: VersionOption = None,
+    json_out: JsonOption = False,
+    html: HtmlOption = None,
+    png: PngOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Explain one event's network magnitude: weights, residuals, leave-one-out checks."""
+    from fusion.event_view import explain_event, render_event
+
+    cfg = load(config)
+    st = open_store(cfg, store)
+    ex = explain_event(st, open_registry(st), cfg, event_id, magnitude_type=type, version=version)
+    if html is not None or png is not None:
+        from fusion.report import write_event_figure
+
+        for path, fmt in ((html, "html"), (png, "png")):
+            if path is not None:
+                write_event_figure(ex, path, fmt=fmt)
+    if json_out:
+        typer.echo(json.dumps(ex.to_dict(), indent=2, default=str))
+    else:
+        typer.echo(render_event(ex))
+
+
+CandidateArgument = Annotated[
+    str | None,
+    typer.Argument(help="Candidate version (default: the newest version that is not active)."),
+]
+DaysOption = Annotated[
+    float | None, typer.Option("--days", help="Recent events compared, days ([nightly]).")
+]
+TopOption = Annotated[
+    int | None, typer.Option("--top", help="Number of most-moved events listed ([nightly]).")
+]
+
+
+def diff_command(
+    candidate: CandidateArgument = None,
+    type: TypeOption = None,
+    days: DaysOption = None,
+    top: TopOption = None,
+    json_out: JsonOption = False,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Dry run: how weights and recent magnitudes would change if a candidate were adopted.
+
+    Writes nothing.
+    """
+    from fusion.dry_run import dry_run
+
+    cfg = load(config)
+    st = open_store(cfg, store)
+    report = dry_run(
+        st, open_registry(st), cfg, magnitude_type=type, candidate=candidate, days=days, top=top
+    )
+    ok, reasons = report.within_policy(
+        max_weight_share_change=cfg.nightly.max_weight_share_change,
+        max_bias_change=cfg.nightly.max_bias_change,
+    )
+    if json_out:
+        payload = report.to_dict()
+        payload["within_policy"] = ok
+        payload["policy_reasons"] = reasons
+        typer.echo(json.dumps(payload, indent=2, default=str))
+    else:
+        typer.echo(report.render_text())
+        typer.echo("")
+        typer.echo(
+            "within the adoption policy"
+            if ok
+            else "outside the adoption policy: " + "; ".join(reasons)
+        )
+    print_advisory()

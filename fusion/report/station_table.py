@@ -1,0 +1,525 @@
+"""The station reliability table: one row per station unit, written as CSV and Parquet.
+
+Columns (magnitudes in magnitude units; times UTC):
+
+===================== =====================================================================
+column                meaning
+===================== =====================================================================
+station_id, unit_id   ``NET.STA.LOC`` and the model unit (station epoch)
+epoch_start/end       bounds of the unit (null: open)
+bias, bias_se         b̂ relative to the anchor and its SE
+bias_ci_low/high      b̂ ± z·SE, z = Φ⁻¹((1 + level)/2) (normal interval)
+sigma                 moderated error SD σ̃
+sigma_ci_low/high     chi-square interval σ̃·sqrt(d/χ²_d(1 − α/2)) .. σ̃·sqrt(d/χ²_d(α/2)), d = dof
+                      (the usual interval for a normal SD with d degrees of freedom; null
+                      without dof)
+dof                   degrees of freedom d of σ̃ (input)
+sigma_rank            1 = smallest σ̃
+n_events              readings the fit used (input; null if not given)
+fit_outlier_rate      outlier fraction in the fit (input)
+n_readings            detections of the unit in the report window
+weight_share          Σ weight of the unit's rows / number of events with a magnitude: the
+                      share of all network weight the unit carries (shares sum to 1 over units
+                      plus stations the model does not know)
+mean_weight           Σ weight / n_readings: the unit's typical weight when it reports
+outlier_rate          window readings with robust weight < ``outlier_weight`` / readings
+                      with a robust weight
+residual_mean         robust-weighted mean residual (corrected − network magnitude) over the
+                      window's events with >= 2 stations; residual_mean_t its t ratio
+residual_sd           SD of those residuals
+distance_slope        weighted slope of residual on log10(epicentral distance / km), magnitude
+                      units per decade; distance_slope_se, distance_t, distance_n
+magnitude_slope       the same against the network magnitude (magnitude units per magnitude
+                      unit); magnitude_slope_se, magnitude_t, magnitude_n
+prior_dominated       input flag
+uncalibrated          input flag
+flags                 ';'-joined :class:`StationFlag` values
+partners              correlated partners with ρ̂ and its interval, '; '-joined
+n_drift_alarms        drift alarms whose alarm time lies in the unit's epoch
+drift_alarms          'change → alarm (up/down)' dates, '; '-joined
+===================== =====================================================================
+
+Trend t ratios and the |t| > 3 rule: :mod:`fusion.report.trends`. ``residual-offset`` uses the
+same rule on the mean residual: under the model each residual has mean 0, so a mean residual
+with |t| > 3 says the bias has moved since the fit (or the unit's window residuals are skewed by
+detection, DESIGN §11).
+
+The Parquet file is written through :data:`STATION_REPORT_SCHEMA` (units in field metadata,
+schema name and version in the file's key-value metadata).
+"""
+
+from __future__ import annotations
+
+from enum import StrEnum
+from pathlib import Path
+from typing import Final
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+from numpy.typing import NDArray
+from scipy import special, stats
+
+from fusion.report.inputs import ReportInputs, as_bool, codes_in
+from fusion.report.joined import JoinedRows, join_rows
+from fusion.report.trends import TREND_T_ALARM, grouped_wls_slope
+from stations.errors import ConfigError
+
+__all__ = [
+    "ATTENTION_FLAGS",
+    "STATION_REPORT_SCHEMA",
+    "STATION_REPORT_SCHEMA_VERSION",
+    "StationFlag",
+    "station_reliability_table",
+    "write_station_table",
+]
+
+STATION_REPORT_SCHEMA_VERSION: Final = "1"
+
+
+class StationFlag(StrEnum):
+    """Short names joined by ';' in the ``flags`` column (meanings in the report's notes)."""
+
+    distance_trend = "distance-trend"  #: |t| > 3 for residual against log10 distance
+    magnitude_trend = "magnitude-trend"  #: |t| > 3 for residual against network magnitude
+    residual_offset = "residual-offset"  #: |t| > 3 for the mean residual in the window
+    many_outliers = "many-outliers"  #: window outlier rate above ``outlier_rate_alert``
+    drift_alarm = "drift-alarm"  #: a CUSUM bias-step alarm in the unit's epoch
+    correlated = "correlated"  #: a flagged correlated partner
+    uncalibrated = "uncalibrated"  #: no anchor in the unit's component
+    prior_dominated = "prior-dominated"  #: the prior outweighs the data (few readings)
+
+
+#: Flags that earn a station a full section in the HTML report (prior-dominated alone does
+#: not: it is the normal state of a new station).
+ATTENTION_FLAGS: Final = frozenset(StationFlag) - {StationFlag.prior_dominated}
+
+_FLAG_ORDER: Final = tuple(StationFlag)
+
+
+def _f(frame: pd.DataFrame, name: str, fill: float = np.nan) -> NDArray[np.float64]:
+    if name not in frame.columns:
+        return np.full(len(frame), fill)
+    return np.asarray(pd.to_numeric(frame[name], errors="coerce"), dtype=np.float64)
+
+
+def _b(frame: pd.DataFrame, name: str, table: str = "stations") -> NDArray[np.bool_]:
+    if name not in frame.columns:
+        return np.zeros(len(frame), dtype=bool)
+    return as_bool(frame[name], table, name)
+
+
+def _utc(frame: pd.DataFrame, name: str) -> pd.Series:
+    if name not in frame.columns:
+        return pd.Series(pd.NaT, index=frame.index, dtype="datetime64[us, UTC]")
+    return pd.to_datetime(frame[name], utc=True).astype("datetime64[us, UTC]")
+
+
+def _check_level(level: float, where: str) -> None:
+    if not (isinstance(level, (int, float)) and 0.0 < float(level) < 1.0):
+        raise ConfigError(
+            f"The 'level' parameter of {where} must be a float in the range (0, 1). "
+            f"Got {level!r} instead."
+        )
+
+
+def sigma_interval(
+    sigma: NDArray[np.float64], dof: NDArray[np.float64], level: float
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Chi-square interval of an SD estimated with ``dof`` degrees of freedom.
+
+    (d s²/χ²_d(1 − α/2), d s²/χ²_d(α/2)) for σ², square-rooted; α = 1 − level. NaN where
+    dof is not > 0. (The textbook interval for a normal variance, e.g. NIST/SEMATECH
+    e-Handbook of Statistical Methods §7.2.6.1 [from memory: section number].)
+    """
+    d = np.asarray(dof, dtype=np.float64)
+    ok = np.isfinite(d) & (d > 0.0)
+    dd = np.where(ok, d, 1.0)
+    alpha = 1.0 - float(level)
+    hi_q = stats.chi2.ppf(1.0 - alpha / 2.0, dd)
+    lo_q = stats.chi2.ppf(alpha / 2.0, dd)
+    low = np.where(ok, sigma * np.sqrt(dd / hi_q), np.nan)
+    with np.errstate(divide="ignore"):
+        high = np.where(ok, sigma * np.sqrt(dd / lo_q), np.nan)
+    return low, high
+
+
+def _flag_text(bits: NDArray[np.int64]) -> NDArray[np.object_]:
+    uniq, inv = np.unique(bits, return_inverse=True)
+    text = np.array(
+        [";".join(str(f) for i, f in enumerate(_FLAG_ORDER) if int(u) >> i & 1) for u in uniq],
+        dtype=object,
+    )
+    return text[inv]
+
+
+def _partner_text(inputs: ReportInputs) -> NDArray[np.object_]:
+    """Partners of each unit: flagged pairs of the pair table (by unit or station id), plus
+    the ``partner`` column of the station table; '; '-joined, with ρ̂ and interval if known."""
+    st = inputs.stations
+    K = len(st)
+    unit_ids = pd.Index(st["unit_id"].astype(str))
+    station_ids = st["station_id"].astype(str).to_numpy()
+    parts: list[pd.DataFrame] = []
+    pairs = inputs.pairs
+    if len(pairs):
+        fl = pairs[as_bool(pairs["flagged"], "pairs", "flagged")]
+        if len(fl):
+            text = (
+                "ρ "
+                + fl["rho_hat"].map("{:.2f}".format)
+                + " ["
+                + fl["rho_ci_low"].map("{:.2f}".format)
+                + ", "
+                + fl["rho_ci_high"].map("{:.2f}".format)
+                + "]"
+            )
+            a = fl["station_k"].astype(str).to_numpy()
+            b = fl["station_l"].astype(str).to_numpy()
+            side = pd.DataFrame(
+                {
+                    "me": np.concatenate([a, b]),
+                    "other": np.concatenate([b, a]),
+                    "text": np.concatenate([text.to_numpy(), text.to_numpy()]),
+                }
+            )
+            # A pair id may be a unit id or a station id: match units on either.
+            by_unit = codes_in(side["me"], unit_ids)
+            hits = [pd.DataFrame({"k": by_unit[by_unit >= 0], "row": np.flatnonzero(by_unit >= 0)})]
+            st_frame = pd.DataFrame({"station_id": station_ids, "k": np.arange(K)})
+            rest = side.loc[by_unit < 0].reset_index().rename(columns={"index": "row"})
+            merged = rest.merge(st_frame, left_on="me", right_on="station_id")
+            hits.append(merged[["k", "row"]])
+            hit = pd.concat(hits, ignore_index=True)
+            parts.append(
+                pd.DataFrame(
+                    {
+                        "k": hit["k"].to_numpy(),
+                        "text": side["other"].to_numpy()[hit["row"].to_numpy()]
+                        + " ("
+                        + side["text"].to_numpy()[hit["row"].to_numpy()]
+                        + ")",
+                        "other": side["other"].to_numpy()[hit["row"].to_numpy()],
+                    }
+                )
+            )
+    if "partner" in st.columns:
+        p = st["partner"].fillna("").astype(str).to_numpy()
+        has = np.flatnonzero(p != "")
+        parts.append(pd.DataFrame({"k": has, "text": p[has], "other": p[has]}))
+    out = np.full(K, "", dtype=object)
+    if not parts:
+        return out
+    allp = pd.concat(parts, ignore_index=True)
+    if not len(allp):
+        return out
+    # A partner named by both sources is listed once (the pair table's text, which has ρ̂).
+    allp["other_station"] = allp["other"].str.split("@").str[0]
+    allp = allp.drop_duplicates(subset=["k", "other_station"], keep="first")
+    joined = allp.groupby("k", sort=True)["text"].agg("; ".join)
+    out[joined.index.to_numpy(dtype=np.int64)] = joined.to_numpy()
+    return out
+
+
+def _drift(inputs: ReportInputs) -> tuple[NDArray[np.int64], NDArray[np.object_]]:
+    """Drift alarms per unit: the unit of the alarm's station whose epoch holds the alarm
+    time (else the station's last unit)."""
+    st = inputs.stations
+    K = len(st)
+    n = np.zeros(K, dtype=np.int64)
+    text = np.full(K, "", dtype=object)
+    ep = inputs.epochs
+    if not len(ep):
+        return n, text
+    units = pd.DataFrame(
+        {
+            "station_id": st["station_id"].astype(str).to_numpy(),
+            "k": np.arange(K),
+            "start": _utc(st, "epoch_start"),
+            "end": _utc(st, "epoch_end"),
+        }
+    )
+    alarms = pd.DataFrame(
+        {
+            "station_id": ep["station_id"].astype(str).to_numpy(),
+            "change": _utc(ep, "change_time").to_numpy(),
+            "alarm": _utc(ep, "alarm_time").to_numpy(),
+            "direction": _f(ep, "direction", 0.0),
+            "a": np.arange(len(ep)),
+        }
+    )
+    m = alarms.merge(units, on="station_id")
+    inside = (m["start"].isna() | (m["start"] <= m["alarm"])) & (
+        m["end"].isna() | (m["alarm"] < m["end"])
+    )
+    chosen = m[inside].drop_duplicates("a")
+    last = m.sort_values(["a", "start"], na_position="first").drop_duplicates("a", keep="last")
+    chosen = pd.concat([chosen, last[~last["a"].isin(chosen["a"])]], ignore_index=True)
+    if not len(chosen):
+        return n, text
+    chosen = chosen.sort_values(["k", "change"])
+    word = np.where(chosen["direction"].to_numpy() > 0, "up", "down")
+    label = (
+        chosen["change"].dt.strftime("%Y-%m-%d").to_numpy().astype(object)
+        + " → "
+        + chosen["alarm"].dt.strftime("%Y-%m-%d").to_numpy().astype(object)
+        + " ("
+        + word.astype(object)
+        + ")"
+    )
+    k = chosen["k"].to_numpy(dtype=np.int64)
+    n = np.bincount(k, minlength=K).astype(np.int64)
+    joined = pd.Series(label, index=k).groupby(level=0).agg("; ".join)
+    text[joined.index.to_numpy(dtype=np.int64)] = joined.to_numpy()
+    return n, text
+
+
+def station_reliability_table(
+    inputs: ReportInputs,
+    *,
+    level: float = 0.95,
+    trend_t: float = TREND_T_ALARM,
+    min_trend_rows: int = 20,
+    outlier_weight: float = 0.3,
+    outlier_rate_alert: float = 0.02,
+    joined: JoinedRows | None = None,
+) -> pd.DataFrame:
+    """One row per station unit with reliability figures and flags (module docstring).
+
+    Parameters
+    ----------
+    inputs : ReportInputs
+        Validated inputs (:meth:`ReportInputs.validated`), already cut to the report window.
+    level : float, default=0.95
+        Coverage of the bias and σ intervals, a fraction in (0, 1).
+    trend_t : float, default=3.0
+        |t| above this flags a trend or a residual offset.
+    min_trend_rows : int, default=20
+        Fewer usable readings give no trend (NaN) and no trend flag.
+    outlier_weight : float, default=0.3
+        A reading with robust weight below this is an outlier (DESIGN §5.3).
+    outlier_rate_alert : float, default=0.02
+        ``many-outliers`` above this window outlier rate. Under the Gaussian model a reading
+        gets ω < 0.3 (ν = 4) only beyond |u| ≈ 3.56, probability 0.04 %; the design's
+        simulations plant 1 % outlier cells. 2 % is chosen here (common practice, no source).
+    joined : JoinedRows, optional
+        Pre-joined rows (the report passes its own; computed if absent).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns in the order of :data:`STATION_REPORT_SCHEMA`.
+
+    Raises
+    ------
+    ConfigError
+        A parameter is out of range.
+    """
+    where = "station_reliability_table"
+    _check_level(level, where)
+    if not (trend_t > 0.0):
+        raise ConfigError(
+            f"The 'trend_t' parameter of {where} must be a float in the range (0, inf). "
+            f"Got {trend_t!r} instead."
+        )
+    st = inputs.stations
+    K = len(st)
+    jr = join_rows(inputs) if joined is None else joined
+    z = float(special.ndtri(0.5 + 0.5 * level))
+    bias = _f(st, "bias")
+    bias_se = _f(st, "bias_se")
+    sigma = _f(st, "sigma")
+    dof = _f(st, "dof")
+    s_lo, s_hi = sigma_interval(sigma, dof, level)
+    rank = pd.Series(sigma).rank(method="min").to_numpy()
+
+    # -- window figures per unit ---------------------------------------------------------
+    known = jr.unit >= 0
+    det = known & jr.detected
+    n_read = np.bincount(jr.unit[det], minlength=K).astype(np.int64)
+    n_est = int(np.count_nonzero(np.isfinite(pd.to_numeric(inputs.events["magnitude"]))))
+    w_ok = known & np.isfinite(jr.weight)
+    w_sum = np.bincount(jr.unit[w_ok], weights=jr.weight[w_ok], minlength=K)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        weight_share = w_sum / n_est if n_est else np.full(K, np.nan)
+        mean_weight = np.where(n_read > 0, w_sum / np.maximum(n_read, 1), np.nan)
+    has_rw = det & np.isfinite(jr.robust_weight)
+    n_rw = np.bincount(jr.unit[has_rw], minlength=K)
+    n_out = np.bincount(jr.unit[has_rw & (jr.robust_weight < outlier_weight)], minlength=K)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        outlier_rate = np.where(n_rw > 0, n_out / np.maximum(n_rw, 1), np.nan)
+
+    a = jr.analysable
+    rw = np.where(np.isfinite(jr.robust_weight), jr.robust_weight, 1.0)
+    g = np.where(a, jr.unit, -1)
+    sw = np.bincount(g[a], weights=rw[a], minlength=K)
+    n_a = np.bincount(g[a], minlength=K)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r_mean = np.bincount(g[a], weights=rw[a] * jr.residual[a], minlength=K) / sw
+        dr = jr.residual[a] - r_mean[g[a]]
+        ss = np.bincount(g[a], weights=rw[a] * dr * dr, minlength=K)
+        r_sd = np.sqrt(ss / np.maximum(n_a - 1, 1) * n_a / sw)  # robust-weighted SD
+        r_se = np.sqrt(ss / np.maximum(n_a - 1, 1) / sw)
+        r_t = r_mean / r_se
+    few = n_a < max(int(min_trend_rows), 2)
+    r_mean = np.where(n_a > 0, r_mean, np.nan)
+    r_sd = np.where(n_a > 1, r_sd, np.nan)
+    r_t = np.where(few, np.nan, r_t)
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        logd = np.log10(jr.distance_km)
+    dist = grouped_wls_slope(g, logd, jr.residual, rw, K, min_rows=min_trend_rows)
+    mag = grouped_wls_slope(g, jr.event_magnitude, jr.residual, rw, K, min_rows=min_trend_rows)
+
+    # -- flags ---------------------------------------------------------------------------
+    prior = _b(st, "prior_dominated")
+    uncal = _b(st, "uncalibrated")
+    partners = _partner_text(inputs)
+    n_drift, drift_text = _drift(inputs)
+    masks = {
+        StationFlag.distance_trend: np.abs(np.nan_to_num(dist.t)) > trend_t,
+        StationFlag.magnitude_trend: np.abs(np.nan_to_num(mag.t)) > trend_t,
+        StationFlag.residual_offset: np.abs(np.nan_to_num(r_t)) > trend_t,
+        StationFlag.many_outliers: np.nan_to_num(outlier_rate) > outlier_rate_alert,
+        StationFlag.drift_alarm: n_drift > 0,
+        StationFlag.correlated: partners != "",
+        StationFlag.uncalibrated: uncal,
+        StationFlag.prior_dominated: prior,
+    }
+    bits = np.zeros(K, dtype=np.int64)
+    for i, f in enumerate(_FLAG_ORDER):
+        bits |= np.where(masks[f], 1 << i, 0)
+
+    if "n_events" in st.columns:
+        n_fit = pd.Series(pd.to_numeric(st["n_events"]).to_numpy(), dtype="Int64")
+    else:
+        n_fit = pd.Series([pd.NA] * K, dtype="Int64")
+    return pd.DataFrame(
+        {
+            "station_id": st["station_id"].astype(str).to_numpy(),
+            "unit_id": st["unit_id"].astype(str).to_numpy(),
+            "epoch_start": _utc(st, "epoch_start").to_numpy(),
+            "epoch_end": _utc(st, "epoch_end").to_numpy(),
+            "bias": bias,
+            "bias_se": bias_se,
+            "bias_ci_low": bias - z * bias_se,
+            "bias_ci_high": bias + z * bias_se,
+            "sigma": sigma,
+            "sigma_ci_low": s_lo,
+            "sigma_ci_high": s_hi,
+            "dof": dof,
+            "sigma_rank": rank.astype(np.int64),
+            "n_events": n_fit.array,
+            "fit_outlier_rate": _f(st, "outlier_rate"),
+            "n_readings": n_read,
+            "weight_share": weight_share,
+            "mean_weight": mean_weight,
+            "outlier_rate": outlier_rate,
+            "residual_mean": r_mean,
+            "residual_mean_t": r_t,
+            "residual_sd": r_sd,
+            "distance_slope": dist.slope,
+            "distance_slope_se": dist.se,
+            "distance_t": dist.t,
+            "distance_n": dist.n,
+            "magnitude_slope": mag.slope,
+            "magnitude_slope_se": mag.se,
+            "magnitude_t": mag.t,
+            "magnitude_n": mag.n,
+            "prior_dominated": prior,
+            "uncalibrated": uncal,
+            "flags": _flag_text(bits),
+            "partners": partners,
+            "n_drift_alarms": n_drift,
+            "drift_alarms": drift_text,
+        }
+    )
+
+
+# -- files -------------------------------------------------------------------------------------
+
+
+def _fld(name: str, typ: pa.DataType, unit: str | None, doc: str) -> pa.Field:
+    meta = {"doc": doc}
+    if unit is not None:
+        meta["unit"] = unit
+    return pa.field(name, typ, nullable=True, metadata=meta)
+
+
+_MAG = "magnitude units"
+_UTC = pa.timestamp("us", tz="UTC")
+
+STATION_REPORT_SCHEMA: Final = pa.schema(
+    [
+        _fld("station_id", pa.string(), None, "FDSN NET.STA.LOC"),
+        _fld("unit_id", pa.string(), None, "model unit (station epoch)"),
+        _fld("epoch_start", _UTC, "UTC", "start of the unit; null: open"),
+        _fld("epoch_end", _UTC, "UTC", "end of the unit (exclusive); null: open"),
+        _fld("bias", pa.float64(), _MAG, "station bias relative to the anchor"),
+        _fld("bias_se", pa.float64(), _MAG, "standard error of the bias"),
+        _fld("bias_ci_low", pa.float64(), _MAG, "normal interval, level in file metadata"),
+        _fld("bias_ci_high", pa.float64(), _MAG, "normal interval, level in file metadata"),
+        _fld("sigma", pa.float64(), _MAG, "moderated error SD"),
+        _fld("sigma_ci_low", pa.float64(), _MAG, "chi-square interval with dof"),
+        _fld("sigma_ci_high", pa.float64(), _MAG, "chi-square interval with dof"),
+        _fld("dof", pa.float64(), None, "degrees of freedom of sigma"),
+        _fld("sigma_rank", pa.int64(), None, "1 = smallest sigma"),
+        _fld("n_events", pa.int64(), None, "readings used by the fit"),
+        _fld("fit_outlier_rate", pa.float64(), "fraction", "outlier fraction in the fit"),
+        _fld("n_readings", pa.int64(), None, "detections in the report window"),
+        _fld("weight_share", pa.float64(), "fraction", "share of all network weight"),
+        _fld("mean_weight", pa.float64(), "fraction", "mean normalised weight per reading"),
+        _fld("outlier_rate", pa.float64(), "fraction", "window readings with robust weight<0.3"),
+        _fld("residual_mean", pa.float64(), _MAG, "robust-weighted mean residual"),
+        _fld("residual_mean_t", pa.float64(), None, "t ratio of residual_mean"),
+        _fld("residual_sd", pa.float64(), _MAG, "SD of the residuals"),
+        _fld("distance_slope", pa.float64(), "magnitude units per decade of km", "WLS slope"),
+        _fld("distance_slope_se", pa.float64(), "magnitude units per decade of km", "its SE"),
+        _fld("distance_t", pa.float64(), None, "slope / SE"),
+        _fld("distance_n", pa.int64(), None, "readings in the distance fit"),
+        _fld("magnitude_slope", pa.float64(), "magnitude units per magnitude unit", "WLS"),
+        _fld("magnitude_slope_se", pa.float64(), "magnitude units per magnitude unit", "SE"),
+        _fld("magnitude_t", pa.float64(), None, "slope / SE"),
+        _fld("magnitude_n", pa.int64(), None, "readings in the magnitude fit"),
+        _fld("prior_dominated", pa.bool_(), None, "the prior outweighs the data"),
+        _fld("uncalibrated", pa.bool_(), None, "no anchor in the unit's component"),
+        _fld("flags", pa.string(), None, "';'-joined StationFlag values"),
+        _fld("partners", pa.string(), None, "correlated partners with rho"),
+        _fld("n_drift_alarms", pa.int64(), None, "CUSUM alarms in the epoch"),
+        _fld("drift_alarms", pa.string(), None, "change -> alarm dates"),
+    ],
+    metadata={
+        "magfuse.schema": "station_report",
+        "magfuse.schema_version": STATION_REPORT_SCHEMA_VERSION,
+    },
+)
+
+
+def write_station_table(
+    table: pd.DataFrame,
+    csv_path: Path,
+    parquet_path: Path,
+    *,
+    metadata: dict[str, str] | None = None,
+) -> None:
+    """Write the station table as CSV (ISO 8601 UTC times) and Parquet (declared schema).
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        From :func:`station_reliability_table`.
+    csv_path, parquet_path : Path
+        Files to write (replaced if present).
+    metadata : dict of str, optional
+        Extra key-value metadata for the Parquet file (model version, level, window).
+    """
+    arrow = pa.Table.from_pandas(table, schema=STATION_REPORT_SCHEMA, preserve_index=False)
+    meta = dict(STATION_REPORT_SCHEMA.metadata or {})
+    meta.update({k.encode(): v.encode() for k, v in (metadata or {}).items()})
+    arrow = arrow.replace_schema_metadata(meta)
+    pq.write_table(arrow, parquet_path)
+    text = table.copy()
+    for col in ("epoch_start", "epoch_end"):
+        text[col] = pd.to_datetime(text[col], utc=True).dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+    text.to_csv(csv_path, index=False, na_rep="")
