@@ -1,0 +1,640 @@
+"""Fused network magnitudes as QuakeML 1.2, through ObsPy's event model (``obspy.core.event``).
+
+One ``Event`` per event with a finite fused magnitude; events without one (flag
+``no-detection``) are left out and counted. Field mapping (QuakeML BED 1.2 names; magfuse
+columns of :class:`~fusion.fused_store.FusedStore` frames):
+
+=============================================== =========================== ==================
+QuakeML element                                 magfuse column              unit
+=============================================== =========================== ==================
+event/@publicID                                 event_id (see Identifiers)  --
+origin/time                                     origin_time                 UTC
+origin/latitude, origin/longitude               event_latitude, _longitude  deg (WGS84)
+origin/depth                                    event_depth × 1000          m
+magnitude/mag/value                             magnitude                   magnitude units
+magnitude/mag/uncertainty                       se (1σ standard error)      magnitude units
+magnitude/mag/confidenceLevel                   68.2689… (see below)        percent (0–100)
+magnitude/type                                  magnitude_type              --
+magnitude/stationCount                          n_stations                  count
+magnitude/methodID                              method → smi:…/method/<m>   --
+magnitude/evaluationMode                        "automatic"                 --
+magnitude/evaluationStatus                      evaluation_status           --
+magnitude/creationInfo/version                  model_version               --
+magnitude/creationInfo/creationTime             fused_at                    UTC
+magnitude/comment                               flags, run_id               --
+stationMagnitude/mag/value                      corrected_magnitude         magnitude units
+stationMagnitude/type                           magnitude_type              --
+stationMagnitude/waveformID                     station_id (+ channel)      NET.STA.LOC.CHA
+stationMagnitude/methodID                       smi:…/method/station-corrected --
+stationMagnitude/comment                        correction, magnitude, …    magnitude units
+stationMagnitudeContribution/weight             weight                      1
+stationMagnitudeContribution/residual           residual                    magnitude units
+=============================================== =========================== ==================
+
+**Uncertainty and its level.** QuakeML's ``RealQuantity`` gives one ``confidenceLevel`` (in
+percent, 0–100; QuakeML BED 1.2) for its ``uncertainty``. With ``uncertainty="se"`` (default)
+the uncertainty is the 1σ standard error, whose coverage under the Gaussian model is
+100·erf(1/√2) = 68.2689 % (:data:`SE_CONFIDENCE_PERCENT`), and that is the level written.
+With ``uncertainty="interval"`` it is the half-width of the fused interval,
+(ci_high − ci_low)/2, with level 100 × ``confidence_level``. magfuse keeps levels as fractions
+everywhere else; QuakeML is the one place where they are percent.
+
+**Station magnitudes.** ``mag`` is the *corrected* station magnitude (as read plus the station
+correction), so QuakeML's own relations hold: ``residual`` = station ``mag`` − network ``mag``,
+and Σ weight·mag over the contributions equals the network magnitude for GLS estimates
+(``weight`` is the normalised GLS weight; it may be negative, and QuakeML does not require
+weights to sum to one). The ``methodID`` ``smi:magfuse.invalid/method/station-corrected`` says
+so. The station correction goes into a ``comment`` of the station magnitude (a standard place
+every QuakeML reader keeps), as ``key=value`` pairs separated by ``"; "``::
+
+    station_correction=-0.134021; magnitude_as_read=2.332505; unit_id=ZZ.S009.; flags=outlier
+
+(:func:`comment_fields` parses it.) Non-detections and rows without a finite magnitude have no
+station magnitude; their weights (censored estimates) are in the CSV/Parquet exports only.
+
+**Identifiers.** An event id that is already a QuakeML resource identifier (``smi:`` or
+``quakeml:``) is used as the event's ``publicID``; any other id becomes
+``smi:magfuse.invalid/event/<id>`` with characters outside ``A-Z a-z 0-9 - . _`` written as
+``~HH`` (UTF-8 bytes in hex; :func:`event_id_from_resource_id` inverts it). Every other object
+gets an id under ``smi:magfuse.invalid/``, derived from event, type and run, so the same input
+gives the same file. ``magfuse.invalid`` uses the reserved top-level name ``.invalid``
+(RFC 2606): these ids never resolve.
+
+**Origins.** QuakeML 1.2 requires latitude and longitude on an origin, and an origin for every
+station magnitude (``stationMagnitude/originID`` is mandatory). An origin is written for the
+events whose location the caller gives (``readings``, columns of the station store); it is the
+source's origin, copied, and becomes ``preferredOriginID``. An event without a known location
+gets the network magnitude alone (with ``stationCount``), no station magnitudes, and its
+origin time in an event comment ``origin_time=...``; its station rows stay in the CSV and
+Parquet exports. The magnitude does not become
+``preferredMagnitudeID``: magfuse magnitudes are advisory, and the preferred magnitude is the
+publishing authority's choice (:data:`fusion.advisory.ADVISORY`, also the first comment of
+``eventParameters``).
+
+References
+----------
+QuakeML 1.2 Basic Event Description, schema ``QuakeML-BED-1.2.xsd`` (as shipped with ObsPy
+1.5.1, ``obspy/io/quakeml/data``). Schorlemmer D. et al. (2011), QuakeML: status of the XML-based
+seismological data exchange format, Annals of Geophysics 54(1):59–65. Eastlake D., Panitz A.
+(1999), RFC 2606, Reserved Top Level DNS Names.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import TYPE_CHECKING, Final, Literal
+
+import numpy as np
+import pandas as pd
+
+from fusion import __version__
+from fusion.advisory import ADVISORY
+from fusion.export.formats import ExportFormat, ExportReport
+from fusion.export.sidecar import readme_text, stamp, write_readme
+from fusion.export.tabular import check_target
+from stations.errors import ConfigError, SchemaError
+from stations.store.atomic import write_bytes_atomic
+
+if TYPE_CHECKING:
+    from obspy.core.event import Catalog
+
+__all__ = [
+    "AUTHORITY",
+    "QUAKEML_MAPPING",
+    "SE_CONFIDENCE_PERCENT",
+    "QuakeMLSummary",
+    "build_catalog",
+    "comment_fields",
+    "event_id_from_resource_id",
+    "event_locations",
+    "event_resource_id",
+    "write_quakeml",
+]
+
+#: Authority of magfuse's own QuakeML resource identifiers (RFC 2606 reserved name).
+AUTHORITY: Final = "magfuse.invalid"
+_PREFIX: Final = f"smi:{AUTHORITY}"
+#: Coverage of ±1 standard error under the Gaussian model, in percent: 100·erf(1/√2).
+SE_CONFIDENCE_PERCENT: Final = 100.0 * math.erf(1.0 / math.sqrt(2.0))
+
+#: QuakeML ResourceIdentifier pattern (QuakeML-BED-1.2.xsd, type ResourceIdentifier).
+_QUAKEML_ID: Final = re.compile(
+    r"(smi|quakeml):[\w\d][\w\d\-\.\*\(\)_~']{2,}/[\w\d\-\.\*\(\)_~'][\w\d\-\.\*\(\)\+\?_~'=,;#/&]*"
+)
+_NAT: Final = np.iinfo(np.int64).min
+_SAFE: Final = re.compile(r"[A-Za-z0-9._-]")
+_ESCAPED: Final = re.compile(r"(?:~[0-9A-F]{2})+")
+
+#: The README's mapping table: (QuakeML element, magfuse column, unit).
+QUAKEML_MAPPING: Final = (
+    ("event/@publicID", "event_id", "-"),
+    ("origin/time", "origin_time", "UTC"),
+    ("origin/latitude, longitude", "event_latitude, event_longitude", "deg"),
+    ("origin/depth", "event_depth * 1000", "m"),
+    ("magnitude/mag/value", "magnitude", "magnitude units"),
+    ("magnitude/mag/uncertainty", "se (1 sigma) or interval half-width", "magnitude units"),
+    ("magnitude/mag/confidenceLevel", "68.27 for se; 100*confidence_level", "percent"),
+    ("magnitude/type", "magnitude_type", "-"),
+    ("magnitude/stationCount", "n_stations", "count"),
+    ("magnitude/methodID", "method", "-"),
+    ("magnitude/evaluationMode", "always 'automatic'", "-"),
+    ("magnitude/evaluationStatus", "evaluation_status", "-"),
+    ("magnitude/creationInfo/version", "model_version", "-"),
+    ("magnitude/creationInfo/creationTime", "fused_at", "UTC"),
+    ("magnitude/comment", "flags=...; run_id=...", "-"),
+    ("stationMagnitude/mag/value", "corrected_magnitude", "magnitude units"),
+    ("stationMagnitude/waveformID", "station_id (+ channel)", "-"),
+    ("stationMagnitude/comment", "station_correction, magnitude_as_read", "magnitude units"),
+    ("stationMagnitudeContribution/weight", "weight", "1"),
+    ("stationMagnitudeContribution/residual", "residual", "magnitude units"),
+)
+
+_EVENT_COLUMNS: Final = (
+    "event_id",
+    "origin_time",
+    "magnitude_type",
+    "magnitude",
+    "se",
+    "ci_low",
+    "ci_high",
+    "confidence_level",
+    "n_stations",
+    "method",
+    "flags",
+    "model_version",
+    "evaluation_status",
+    "fused_at",
+    "run_id",
+)
+_ROW_COLUMNS: Final = (
+    "event_id",
+    "station_id",
+    "unit_id",
+    "detected",
+    "magnitude",
+    "correction",
+    "corrected_magnitude",
+    "weight",
+    "residual",
+    "flags",
+)
+_LOCATION_COLUMNS: Final = ("event_latitude", "event_longitude", "event_depth")
+
+
+# ---------------------------------------------------------------------------------------------
+# Identifiers and comments
+# ---------------------------------------------------------------------------------------------
+
+
+def _escape(text: str) -> str:
+    """Characters outside ``A-Z a-z 0-9 . _ -`` as ``~HH`` per UTF-8 byte (reversible)."""
+    return "".join(
+        ch if _SAFE.fullmatch(ch) else "".join(f"~{b:02X}" for b in ch.encode("utf-8"))
+        for ch in text
+    )
+
+
+def _unescape(text: str) -> str:
+    return _ESCAPED.sub(lambda m: bytes.fromhex(m.group(0).replace("~", "")).decode(), text)
+
+
+def event_resource_id(event_id: str) -> str:
+    """The QuakeML ``publicID`` of an event (module docstring, Identifiers)."""
+    text = str(event_id)
+    if _QUAKEML_ID.fullmatch(text):
+        return text
+    return f"{_PREFIX}/event/{_escape(text)}"
+
+
+def event_id_from_resource_id(resource_id: str) -> str:
+    """Inverse of :func:`event_resource_id`."""
+    text = str(resource_id)
+    head = f"{_PREFIX}/event/"
+    return _unescape(text[len(head) :]) if text.startswith(head) else text
+
+
+def comment_fields(text: str) -> dict[str, str]:
+    """The ``key=value`` pairs of a magfuse comment (separated by ``"; "``)."""
+    out: dict[str, str] = {}
+    for part in str(text).split("; "):
+        key, sep, value = part.partition("=")
+        if sep:
+            out[key.strip()] = value
+    return out
+
+
+def _num(value: float) -> str:
+    """Shortest text that reads back as the same float (Python's repr of a float)."""
+    return repr(float(value))
+
+
+# ---------------------------------------------------------------------------------------------
+# Input preparation (vectorised)
+# ---------------------------------------------------------------------------------------------
+
+
+def _require(frame: pd.DataFrame, names: tuple[str, ...], where: str) -> None:
+    for name in names:
+        if name not in frame.columns:
+            raise SchemaError(
+                f"{where}: column {name!r} is missing; pass frames of FusedStore.current and "
+                "FusedStore.current_contributions"
+            )
+
+
+def event_locations(readings: pd.DataFrame) -> pd.DataFrame:
+    """Per-event location and per-(event, station) channel from station-store rows.
+
+    Parameters
+    ----------
+    readings : pandas.DataFrame
+        Rows of :data:`~stations.schema.RECORD_SCHEMA` (e.g. ``StationMagnitudeStore.scan``
+        with columns ``event_id, station_id, channel, event_latitude, event_longitude,
+        event_depth``); any of the last four may be absent.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index ``event_id``; columns ``event_latitude``, ``event_longitude`` (deg),
+        ``event_depth`` (km): the first non-null value of each event.
+    """
+    _require(readings, ("event_id",), "readings")
+    cols = [c for c in _LOCATION_COLUMNS if c in readings.columns]
+    frame = readings[["event_id", *cols]].copy()
+    frame["event_id"] = frame["event_id"].astype(str)
+    out = frame.groupby("event_id", sort=False).first()
+    for c in _LOCATION_COLUMNS:
+        if c not in out.columns:
+            out[c] = np.nan
+    return out[list(_LOCATION_COLUMNS)].astype(float)
+
+
+def _channels(readings: pd.DataFrame | None) -> dict[tuple[str, str], str]:
+    """(event_id, station_id) -> channel where the readings name exactly one channel."""
+    if readings is None or "channel" not in readings.columns or "station_id" not in readings:
+        return {}
+    rows = readings[["event_id", "station_id", "channel"]].dropna()
+    rows = rows[rows["channel"].astype(str).str.len() > 0].astype(str)
+    counts = rows.groupby(["event_id", "station_id"], sort=False)["channel"].nunique()
+    first = rows.groupby(["event_id", "station_id"], sort=False)["channel"].first()
+    single = first[counts == 1]
+    return dict(zip(single.index.tolist(), single.tolist(), strict=True))
+
+
+@dataclass(frozen=True, slots=True)
+class QuakeMLSummary:
+    """Counts of :func:`build_catalog`.
+
+    Attributes
+    ----------
+    events : int
+        Events written.
+    without_magnitude : int
+        Events left out: no finite fused magnitude.
+    without_origin : int
+        Events written without an origin, hence without station magnitudes (no location
+        given).
+    station_magnitudes : int
+        Station magnitudes (and contributions) written.
+    model_versions : tuple of str
+    """
+
+    events: int
+    without_magnitude: int
+    without_origin: int
+    station_magnitudes: int
+    model_versions: tuple[str, ...]
+
+
+def _epoch_ns(values: pd.Series) -> np.ndarray:
+    """Nanoseconds since 1970 UTC of a time column (any unit, naive is UTC); NaT -> int64 min."""
+    t = pd.to_datetime(values, utc=True).dt.tz_localize(None)
+    return t.to_numpy(dtype="datetime64[ns]").astype(np.int64)
+
+
+def _station_parts(station_id: str, row: int) -> tuple[str, str, str]:
+    parts = str(station_id).split(".")
+    if len(parts) != 3 or not parts[0] or not parts[1]:
+        raise SchemaError(
+            f"contributions row {row}: station_id {station_id!r} is not FDSN NET.STA.LOC; "
+            "fix the station code in the source and re-ingest"
+        )
+    return parts[0], parts[1], parts[2]
+
+
+def build_catalog(
+    events: pd.DataFrame,
+    contributions: pd.DataFrame,
+    *,
+    readings: pd.DataFrame | None = None,
+    uncertainty: Literal["se", "interval"] = "se",
+    now: datetime | None = None,
+) -> tuple[Catalog, QuakeMLSummary]:
+    """An ObsPy :class:`~obspy.core.event.Catalog` of fused magnitudes (module docstring).
+
+    Parameters
+    ----------
+    events : pandas.DataFrame
+        Current rows (:meth:`FusedStore.current <fusion.fused_store.FusedStore.current>`),
+        one per event.
+    contributions : pandas.DataFrame
+        Their contributions (:meth:`FusedStore.current_contributions
+        <fusion.fused_store.FusedStore.current_contributions>`); an optional ``channel`` column
+        fills the waveform ids' channel codes.
+    readings : pandas.DataFrame, optional
+        Station-store rows giving event locations and channels (:func:`event_locations`).
+    uncertainty : {'se', 'interval'}, default='se'
+        What ``mag/uncertainty`` holds (module docstring).
+    now : datetime, optional
+        Creation time of the catalog (default: the clock).
+
+    Returns
+    -------
+    catalog : obspy.core.event.Catalog
+    summary : QuakeMLSummary
+
+    Raises
+    ------
+    SchemaError
+        A needed column is missing, or a station id is not ``NET.STA.LOC``.
+    ConfigError
+        Unknown ``uncertainty``.
+    """
+    from obspy import UTCDateTime
+    from obspy.core.event import (
+        Catalog,
+        Comment,
+        CreationInfo,
+        Event,
+        Magnitude,
+        Origin,
+        QuantityError,
+        ResourceIdentifier,
+        StationMagnitude,
+        StationMagnitudeContribution,
+        WaveformStreamID,
+    )
+
+    if uncertainty not in ("se", "interval"):
+        raise ConfigError(
+            "The 'uncertainty' parameter of build_catalog must be a str among "
+            f"{{'se', 'interval'}}. Got {uncertainty!r} instead."
+        )
+    _require(events, _EVENT_COLUMNS, "events")
+    _require(contributions, _ROW_COLUMNS, "contributions")
+    created = (now or datetime.now(UTC)).astimezone(UTC)
+
+    # -- events: columns as arrays once -------------------------------------------------------
+    ev_ids = events["event_id"].astype(str).to_numpy()
+    mag = events["magnitude"].to_numpy(dtype=float, na_value=np.nan)
+    keep = np.isfinite(mag)
+    origin_ns = _epoch_ns(events["origin_time"])
+    fused_ns = _epoch_ns(events["fused_at"])
+    se = events["se"].to_numpy(dtype=float, na_value=np.nan)
+    half = 0.5 * (
+        events["ci_high"].to_numpy(dtype=float, na_value=np.nan)
+        - events["ci_low"].to_numpy(dtype=float, na_value=np.nan)
+    )
+    level = events["confidence_level"].to_numpy(dtype=float, na_value=np.nan)
+    unc = se if uncertainty == "se" else half
+    unc_level = np.full(mag.shape, SE_CONFIDENCE_PERCENT) if uncertainty == "se" else 100 * level
+    n_st = events["n_stations"].to_numpy(dtype=np.int64)
+    text_cols = {
+        c: events[c].astype(object).where(events[c].notna(), "").astype(str).to_numpy()
+        for c in ("magnitude_type", "method", "flags", "model_version", "evaluation_status")
+    }
+    run_ids = (
+        events["run_id"].astype(object).where(events["run_id"].notna(), "").astype(str).to_numpy()
+    )
+
+    loc = event_locations(readings) if readings is not None else None
+    lat = lon = dep = np.full(ev_ids.shape, np.nan)
+    if loc is not None:
+        aligned = loc.reindex(ev_ids)
+        lat = aligned["event_latitude"].to_numpy(dtype=float)
+        lon = aligned["event_longitude"].to_numpy(dtype=float)
+        dep = aligned["event_depth"].to_numpy(dtype=float)
+    has_origin = np.isfinite(lat) & np.isfinite(lon)
+    channels = _channels(readings)
+
+    # -- contributions: group rows by event with one stable sort ------------------------------
+    c_ev = pd.Index(ev_ids).get_indexer(pd.Index(contributions["event_id"].astype(str)))
+    c_mag = contributions["corrected_magnitude"].to_numpy(dtype=float, na_value=np.nan)
+    c_det = contributions["detected"].to_numpy(dtype=bool)
+    usable = (c_ev >= 0) & c_det & np.isfinite(c_mag)
+    c_rows = np.flatnonzero(usable)
+    c_rows = c_rows[np.argsort(c_ev[c_rows], kind="stable")]
+    bounds = np.searchsorted(c_ev[c_rows], np.arange(ev_ids.shape[0] + 1))
+    c_sid = contributions["station_id"].astype(str).to_numpy()
+    c_unit = contributions["unit_id"].astype(object).where(contributions["unit_id"].notna(), "")
+    c_unit_s = c_unit.astype(str).to_numpy()
+    c_flags = contributions["flags"].astype(object).where(contributions["flags"].notna(), "")
+    c_flags_s = c_flags.astype(str).to_numpy()
+    c_raw = contributions["magnitude"].to_numpy(dtype=float, na_value=np.nan)
+    c_corr = contributions["correction"].to_numpy(dtype=float, na_value=np.nan)
+    c_w = contributions["weight"].to_numpy(dtype=float, na_value=np.nan)
+    c_res = contributions["residual"].to_numpy(dtype=float, na_value=np.nan)
+    c_chan: np.ndarray | None = None
+    if "channel" in contributions.columns:
+        col = contributions["channel"].astype(object)
+        c_chan = col.where(col.notna(), "").astype(str).to_numpy()
+
+    # -- objects (ObsPy's model is one Python object per element) ---------------------------
+    catalog = Catalog(
+        resource_id=ResourceIdentifier(f"{_PREFIX}/catalog/{created:%Y%m%dT%H%M%S%fZ}"),
+        creation_info=CreationInfo(
+            author="magfuse", version=__version__, creation_time=UTCDateTime(created)
+        ),
+    )
+    catalog.comments.append(
+        Comment(text=ADVISORY, resource_id=ResourceIdentifier(f"{_PREFIX}/comment/advisory"))
+    )
+    n_sm = 0
+    versions: set[str] = set()
+    for j in np.flatnonzero(keep):
+        key = _escape(ev_ids[j])
+        mtype = text_cols["magnitude_type"][j]
+        run = _escape(str(run_ids[j])) or "unstored"
+        event = Event(resource_id=ResourceIdentifier(event_resource_id(ev_ids[j])))
+        origin_id = None
+        if has_origin[j]:
+            origin = Origin(
+                resource_id=ResourceIdentifier(f"{_PREFIX}/origin/{key}"),
+                time=UTCDateTime(ns=int(origin_ns[j])),
+                latitude=float(lat[j]),
+                longitude=float(lon[j]),
+                depth=float(dep[j]) * 1000.0 if np.isfinite(dep[j]) else None,
+            )
+            event.origins.append(origin)
+            event.preferred_origin_id = origin.resource_id
+            origin_id = origin.resource_id
+        else:
+            event.comments.append(
+                Comment(
+                    resource_id=ResourceIdentifier(f"{_PREFIX}/comment/{key}/origin-time"),
+                    text=(
+                        f"origin_time={UTCDateTime(ns=int(origin_ns[j]))}; no location known, "
+                        "so no QuakeML origin"
+                    ),
+                )
+            )
+        mag_id = f"{_PREFIX}/magnitude/{_escape(mtype)}/{key}/{run}"
+        errors = QuantityError()
+        if np.isfinite(unc[j]):
+            errors = QuantityError(uncertainty=float(unc[j]), confidence_level=float(unc_level[j]))
+        version = text_cols["model_version"][j]
+        versions.add(version)
+        magnitude = Magnitude(
+            resource_id=ResourceIdentifier(mag_id),
+            mag=float(mag[j]),
+            mag_errors=errors,
+            magnitude_type=mtype,
+            origin_id=origin_id,
+            method_id=ResourceIdentifier(f"{_PREFIX}/method/{_escape(text_cols['method'][j])}"),
+            station_count=int(n_st[j]),
+            evaluation_mode="automatic",
+            evaluation_status=text_cols["evaluation_status"][j] or None,
+            creation_info=CreationInfo(
+                author="magfuse",
+                version=version or None,
+                creation_time=None if fused_ns[j] == _NAT else UTCDateTime(ns=int(fused_ns[j])),
+            ),
+        )
+        magnitude.comments.append(
+            Comment(
+                resource_id=ResourceIdentifier(f"{mag_id}/comment"),
+                text=f"flags={text_cols['flags'][j]}; run_id={run_ids[j]}",
+            )
+        )
+        # stationMagnitude/originID is mandatory: no origin, no station magnitudes
+        mine = c_rows[bounds[j] : bounds[j + 1]] if origin_id is not None else c_rows[:0]
+        for k, i in enumerate(mine):
+            net, sta, locc = _station_parts(c_sid[i], int(i))
+            chan = c_chan[i] if c_chan is not None else ""
+            chan = chan or channels.get((ev_ids[j], c_sid[i]), "")
+            sm_id = f"{_PREFIX}/stationmagnitude/{_escape(mtype)}/{key}/{run}/{k}"
+            fields: Mapping[str, str] = {
+                "station_correction": _num(c_corr[i]),
+                "magnitude_as_read": _num(c_raw[i]),
+                "unit_id": c_unit_s[i],
+                "flags": c_flags_s[i],
+            }
+            sm = StationMagnitude(
+                resource_id=ResourceIdentifier(sm_id),
+                origin_id=origin_id,
+                mag=float(c_mag[i]),
+                station_magnitude_type=mtype,
+                method_id=ResourceIdentifier(f"{_PREFIX}/method/station-corrected"),
+                waveform_id=WaveformStreamID(
+                    network_code=net,
+                    station_code=sta,
+                    location_code=locc,
+                    channel_code=chan or None,
+                ),
+                comments=[
+                    Comment(
+                        resource_id=ResourceIdentifier(f"{sm_id}/comment"),
+                        text="; ".join(f"{a}={b}" for a, b in fields.items()),
+                    )
+                ],
+            )
+            event.station_magnitudes.append(sm)
+            magnitude.station_magnitude_contributions.append(
+                StationMagnitudeContribution(
+                    station_magnitude_id=sm.resource_id,
+                    residual=float(c_res[i]) if np.isfinite(c_res[i]) else None,
+                    weight=float(c_w[i]) if np.isfinite(c_w[i]) else None,
+                )
+            )
+            n_sm += 1
+        event.magnitudes.append(magnitude)
+        catalog.events.append(event)
+    n_written = int(keep.sum())
+    summary = QuakeMLSummary(
+        events=n_written,
+        without_magnitude=int((~keep).sum()),
+        without_origin=int((keep & ~has_origin).sum()),
+        station_magnitudes=n_sm,
+        model_versions=tuple(sorted(v for v in versions if v)),
+    )
+    return catalog, summary
+
+
+def write_quakeml(
+    events: pd.DataFrame,
+    contributions: pd.DataFrame,
+    path: Path,
+    *,
+    readings: pd.DataFrame | None = None,
+    uncertainty: Literal["se", "interval"] = "se",
+    now: datetime | None = None,
+) -> ExportReport:
+    """Write fused magnitudes as a QuakeML 1.2 file (atomically) plus its README sidecar.
+
+    Parameters are those of :func:`build_catalog`; ``path`` is the file (its folder must
+    exist).
+
+    Returns
+    -------
+    ExportReport
+        ``rows`` counts events written, ``skipped`` events without a magnitude.
+    """
+    target = check_target(path)
+    created = (now or datetime.now(UTC)).astimezone(UTC)
+    catalog, summary = build_catalog(
+        events, contributions, readings=readings, uncertainty=uncertainty, now=created
+    )
+    buf = io.BytesIO()
+    catalog.write(buf, format="QUAKEML")
+    notes: list[str] = []
+    if summary.without_magnitude:
+        notes.append(
+            f"{summary.without_magnitude} events have no fused magnitude (no usable detection) "
+            "and are not in the file."
+        )
+    if summary.without_origin:
+        notes.append(
+            f"{summary.without_origin} events have no known location: they have no origin and "
+            "no station magnitudes (QuakeML requires an origin for both); their origin time is "
+            "in an event comment. Pass the station-store rows with event locations."
+        )
+    mtypes = sorted(set(events["magnitude_type"].astype(str))) if len(events) else []
+    level = "68.27 % (1 sigma)" if uncertainty == "se" else "100 x confidence_level"
+    text = readme_text(
+        title=f"network magnitudes ({', '.join(mtypes) or 'none'}) as QuakeML",
+        data_name=target.name,
+        fmt=ExportFormat.quakeml,
+        rows=summary.events,
+        provenance=[
+            ("Model versions", ", ".join(summary.model_versions) or "-"),
+            ("Station magnitudes", str(summary.station_magnitudes)),
+            ("Uncertainty", f"{uncertainty}; confidenceLevel {level}, in percent"),
+            ("Exported", f"{stamp(created)} by magfuse {__version__}"),
+        ],
+        columns=list(QUAKEML_MAPPING),
+        columns_header=("QuakeML element", "magfuse column", "unit"),
+        notes=[
+            "Station magnitudes are corrected (as read + station correction); the correction "
+            "and the value as read are in each station magnitude's comment "
+            "(station_correction=...; magnitude_as_read=...).",
+            *notes,
+        ],
+    )
+    readme = write_readme(target, text)
+    write_bytes_atomic(target, buf.getvalue())
+    return ExportReport(
+        kind="magnitudes",
+        format=ExportFormat.quakeml.value,
+        path=str(target),
+        readme=str(readme),
+        rows=summary.events,
+        model_versions=summary.model_versions,
+        skipped=summary.without_magnitude,
+        notes=tuple(notes),
+    )
