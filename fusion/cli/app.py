@@ -60,6 +60,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "commands_compute",
     "commands_model",
     "commands_review",
+    "commands_output",
 )
 
 

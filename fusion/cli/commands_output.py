@@ -1,0 +1,209 @@
+"""``magfuse fuse``, ``finalize``, ``export``, ``report``: network magnitudes and their outputs."""
+
+from __future__ import annotations
+
+from enum import StrEnum
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from fusion.cli.common import (
+    ConfigOption,
+    StationsOption,
+    StoreOption,
+    TypeOption,
+    load,
+    open_registry,
+    open_store,
+    parse_time,
+    print_advisory,
+)
+
+__all__ = ["register"]
+
+SinceOption = Annotated[
+    str | None, typer.Option("--since", help="Start of the window, ISO 8601 UTC (inclusive).")
+]
+UntilOption = Annotated[
+    str | None, typer.Option("--until", help="End of the window, ISO 8601 UTC (exclusive).")
+]
+VersionOption = Annotated[
+    str | None,
+    typer.Option("--version", help="Model version to use (default: the active one)."),
+]
+
+
+def register(app: typer.Typer) -> None:
+    """Mount ``fuse``, ``finalize``, ``export`` and ``report``."""
+    app.command("fuse")(fuse_command)
+    app.command("finalize")(finalize_command)
+    app.command("export")(export_command)
+    app.command("report")(report_command)
+
+
+def fuse_command(
+    type: TypeOption = None,
+    since: SinceOption = None,
+    until: UntilOption = None,
+    version: VersionOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Compute network magnitudes for a window and record them with the model version.
+
+    Events whose stored magnitude is marked final are left as they are.
+    """
+    from fusion.fused_store import FusedStore
+    from fusion.fusing import fuse_window
+
+    cfg = load(config)
+    st = open_store(cfg, store)
+    mtype = type or cfg.learn.magnitude_type
+    res = fuse_window(
+        st,
+        open_registry(st),
+        cfg,
+        magnitude_type=mtype,
+        start=parse_time(since, "--since"),
+        end=parse_time(until, "--until"),
+        version=version,
+    )
+    report = FusedStore(st.root, lock=st.write_lock).write_run(
+        res.fused, model_version=res.version.version_id
+    )
+    ev = res.fused.events
+    moved = (ev["magnitude"] - ev["plain_mean"]).abs()
+    typer.echo(
+        f"{mtype}: {report.events_written:,} events fused with {res.version.version_id}; "
+        f"{report.skipped_final:,} left alone (final); "
+        f"median |fused - plain mean| {moved.median():.3f}, largest {moved.max():.3f}"
+    )
+    print_advisory()
+
+
+def finalize_command(
+    event_ids: Annotated[
+        list[str] | None, typer.Argument(help="Events to mark final.", show_default=False)
+    ] = None,
+    before: Annotated[
+        str | None,
+        typer.Option("--before", help="Mark final every event with origin before this time."),
+    ] = None,
+    type: TypeOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Mark fused magnitudes final: later runs never change them."""
+    from fusion.fused_store import FusedStore
+    from stations.errors import ConfigError
+
+    if not event_ids and before is None:
+        raise ConfigError("name events to finalize or give --before DATE")
+    cfg = load(config)
+    st = open_store(cfg, store)
+    mtype = type or cfg.learn.magnitude_type
+    n = FusedStore(st.root, lock=st.write_lock).finalize(
+        mtype, before=parse_time(before, "--before"), event_ids=event_ids or None
+    )
+    typer.echo(f"{mtype}: {n:,} network magnitudes marked final")
+
+
+class ExportWhat(StrEnum):
+    """What ``magfuse export`` writes."""
+
+    magnitudes = "magnitudes"
+    stations = "stations"
+    pairs = "pairs"
+    epochs = "epochs"
+
+
+class ExportFormatChoice(StrEnum):
+    """Export file formats."""
+
+    csv = "csv"
+    parquet = "parquet"
+    quakeml = "quakeml"
+
+
+def export_command(
+    what: Annotated[ExportWhat, typer.Argument(help="magnitudes, stations, pairs or epochs.")],
+    out: Annotated[Path, typer.Option("--out", help="File to write.")],
+    format: Annotated[
+        ExportFormatChoice, typer.Option("--format", help="csv, parquet or quakeml.")
+    ] = ExportFormatChoice.csv,
+    type: TypeOption = None,
+    since: SinceOption = None,
+    until: UntilOption = None,
+    version: VersionOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Export fused magnitudes (from 'magfuse fuse') or a model version's tables.
+
+    Every export writes a README sidecar (<file>.README.txt) with the advisory caution and
+    every column with its unit.
+    """
+    from fusion.export import export_magnitudes, export_model_table
+    from fusion.fused_store import FusedStore
+    from fusion.fusing import resolve_version
+    from stations.errors import ConfigError
+
+    cfg = load(config)
+    st = open_store(cfg, store)
+    mtype = type or cfg.learn.magnitude_type
+    if what is ExportWhat.magnitudes:
+        start, end = parse_time(since, "--since"), parse_time(until, "--until")
+        readings = None
+        if format is ExportFormatChoice.quakeml:
+            readings = st.scan(magnitude_type=mtype, start=start, end=end)
+        report = export_magnitudes(
+            FusedStore(st.root, lock=st.write_lock),
+            mtype,
+            out,
+            format=format.value,
+            start=start,
+            end=end,
+            readings=readings,
+        )
+    else:
+        if format is ExportFormatChoice.quakeml:
+            raise ConfigError(f"{what.value} tables export as csv or parquet, not quakeml")
+        reg = open_registry(st)
+        v = resolve_version(reg, mtype, version)
+        report = export_model_table(reg, v, what.value, out, format=format.value)
+    typer.echo(f"wrote {report.rows:,} rows to {out} (and {Path(report.readme).name})")
+    for note in getattr(report, "notes", ()):
+        typer.echo(f"note: {note}")
+    print_advisory()
+
+
+def report_command(
+    out: Annotated[Path, typer.Option("--out", help="Folder for the report files.")],
+    type: TypeOption = None,
+    since: SinceOption = None,
+    version: VersionOption = None,
+    stations: StationsOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Write the per-station reliability report (HTML with plots, CSV and Parquet tables)."""
+    from fusion.reporting import write_model_report
+    from stations.metadata import StationMetadata
+
+    cfg = load(config)
+    st = open_store(cfg, store)
+    meta_path = stations or (Path(cfg.compute.stations) if cfg.compute.stations else None)
+    files = write_model_report(
+        st,
+        open_registry(st),
+        cfg,
+        out,
+        magnitude_type=type,
+        version=version,
+        since=parse_time(since, "--since"),
+        metadata=StationMetadata.read(meta_path) if meta_path else None,
+    )
+    typer.echo(f"report   {files.html}")
+    typer.echo(f"tables   {files.station_csv}, {files.station_parquet}")
+    print_advisory()
