@@ -57,6 +57,8 @@ class IngestOutcome:
     computed: int = 0
     distances_filled: int = 0
     out_of_domain: int = 0
+    #: Earliest origin time of the rows offered to the store (None if there were none).
+    first_origin: datetime | None = None
 
 
 def hold_uncomputed(
@@ -238,7 +240,9 @@ def ingest_file(
         content_hash=digest,
         on_wait=on_wait,
     )
-    return IngestOutcome(report, computed, filled, out_of_domain)
+    first = records["origin_time"].min() if not records.empty else None
+    first_origin = None if first is None or pd.isna(first) else first.to_pydatetime()
+    return IngestOutcome(report, computed, filled, out_of_domain, first_origin)
 
 
 def recompute_window(

@@ -61,6 +61,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "commands_model",
     "commands_review",
     "commands_output",
+    "commands_nightly",
 )
 
 
