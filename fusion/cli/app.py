@@ -62,6 +62,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "commands_review",
     "commands_output",
     "commands_nightly",
+    "commands_demo",
 )
 
 
