@@ -171,8 +171,9 @@ def _anchor_meta(model: StationModel) -> dict[str, Any]:
 
 
 def _parquet_safe(frame: pd.DataFrame) -> pd.DataFrame:
-    """Object columns that mix types (or are all missing) become strings for Parquet."""
-    out = frame.copy()
+    """Typed columns for Parquet: object columns get their inferred type (bool, float,
+    time), and those that still mix types (or are all missing) become strings."""
+    out = frame.infer_objects()
     for col in out.columns:
         if out[col].dtype == object:
             out[col] = out[col].astype("string")

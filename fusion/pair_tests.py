@@ -163,7 +163,8 @@ class PairDetection:
         One row per tested pair (n_shared ≥ ``min_shared``) of the last pass, sorted by
         p-value. Columns: ``station_k``, ``station_l`` (station ids, k < l in station-table
         order), ``k``, ``l`` (station codes), ``n_shared`` (eligible events),
-        ``n_effective`` ((Σγ)²/Σγ²), ``c_hat`` (magnitude units²), ``rho_hat``,
+        ``n_effective`` ((Σγ)²/Σγ²), ``c_hat`` (magnitude units²), ``rho_hat`` (ĉ/(σ_k σ_l)
+        clipped to [−1, 1]),
         ``rho_ci_low``, ``rho_ci_high`` (95 % Fisher-z interval), ``rho_null`` (null
         correlation of the leave-two-out residuals), ``r_raw`` (their observed uncentred
         correlation), ``statistic`` (T_self), ``statistic_model`` (T_model), ``p_value``,
@@ -799,7 +800,9 @@ def detect_correlated_pairs(
         p = 2.0 * special.ndtr(-np.abs(t))
         p = np.where(np.isfinite(p), p, 1.0)
         fdr = fdr_control(p, fdr_q, method=fdr_method)
-        rho = ps.c_hat[idx] / np.sqrt(sk2 * sl2)
+        # ĉ/(σ_k σ_l) can leave [-1, 1] by sampling error (or with a small σ̂); a correlation
+        # is reported inside it. ``c_hat`` keeps the unclipped estimate.
+        rho = np.clip(ps.c_hat[idx] / np.sqrt(sk2 * sl2), -1.0, 1.0)
         positive = fdr.reject & (rho > 0.0)
         chosen = _greedy_partners(positive, p, t, k, l, K)
         rho_null, lo, hi = _rho_interval(ps.c_hat[idx], ps.v_bar[idx], sk2, sl2, ps.n_eff[idx])
