@@ -3,15 +3,16 @@
 from __future__ import annotations
 
 from datetime import datetime
-from typing import Annotated
 
 import typer
 
 from fusion.cli.common import (
     ConfigOption,
+    SinceOption,
     StationsOption,
     StoreOption,
     TypeOption,
+    UntilOption,
     compute_setup,
     load,
     parse_time,
@@ -20,13 +21,6 @@ from fusion.cli.common import (
 )
 
 __all__ = ["compute_command", "register"]
-
-SinceOption = Annotated[
-    str | None, typer.Option("--since", help="Start of the window, ISO 8601 UTC (inclusive).")
-]
-UntilOption = Annotated[
-    str | None, typer.Option("--until", help="End of the window, ISO 8601 UTC (exclusive).")
-]
 
 
 def register(app: typer.Typer) -> None:

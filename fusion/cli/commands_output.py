@@ -10,9 +10,12 @@ import typer
 
 from fusion.cli.common import (
     ConfigOption,
+    SinceOption,
     StationsOption,
     StoreOption,
     TypeOption,
+    UntilOption,
+    VersionOption,
     load,
     open_registry,
     open_store,
@@ -21,17 +24,6 @@ from fusion.cli.common import (
 )
 
 __all__ = ["register"]
-
-SinceOption = Annotated[
-    str | None, typer.Option("--since", help="Start of the window, ISO 8601 UTC (inclusive).")
-]
-UntilOption = Annotated[
-    str | None, typer.Option("--until", help="End of the window, ISO 8601 UTC (exclusive).")
-]
-VersionOption = Annotated[
-    str | None,
-    typer.Option("--version", help="Model version to use (default: the active one)."),
-]
 
 
 def register(app: typer.Typer) -> None:

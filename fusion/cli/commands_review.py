@@ -13,6 +13,7 @@ from fusion.cli.common import (
     JsonOption,
     StoreOption,
     TypeOption,
+    VersionOption,
     load,
     open_registry,
     open_store,
@@ -28,10 +29,6 @@ def register(app: typer.Typer) -> None:
     app.command("diff")(diff_command)
 
 
-VersionOption = Annotated[
-    str | None,
-    typer.Option("--version", help="Model version to use (default: the active one)."),
-]
 HtmlOption = Annotated[
     Path | None, typer.Option("--html", help="Also write a self-contained HTML page here.")
 ]

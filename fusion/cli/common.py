@@ -32,6 +32,16 @@ TypeOption = Annotated[
     str | None,
     typer.Option("--type", help="Magnitude type (default: [learn] magnitude_type)."),
 ]
+SinceOption = Annotated[
+    str | None, typer.Option("--since", help="Start of the window, ISO 8601 UTC (inclusive).")
+]
+UntilOption = Annotated[
+    str | None, typer.Option("--until", help="End of the window, ISO 8601 UTC (exclusive).")
+]
+VersionOption = Annotated[
+    str | None,
+    typer.Option("--version", help="Model version to use (default: the active one)."),
+]
 ComputeFlag = Annotated[
     bool,
     typer.Option(
