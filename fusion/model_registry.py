@@ -133,6 +133,10 @@ def _fsync_dir(path: Path) -> None:
 
 
 def _write_json_atomic(path: Path, payload: Mapping[str, Any]) -> None:
+    # Temporary files of a writer killed before its rename are garbage: the caller holds the
+    # lock, so no other writer is using one now.
+    for stale in path.parent.glob(f".{path.name}.*"):
+        stale.unlink(missing_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:

@@ -42,6 +42,7 @@ app = typer.Typer(
     ),
     no_args_is_help=True,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # help texts name config sections as [learn]: no markup
     add_completion=False,
 )
 

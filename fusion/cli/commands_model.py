@@ -154,14 +154,21 @@ def models_command(
     if not rows:
         typer.echo("no model versions yet; run 'magfuse learn'")
         return
-    typer.echo(f"  {'version':<34} {'created':<26} {'window end':<26} stations pairs events")
+    typer.echo(
+        f"  {'version':<34} {'created (UTC)':<20} {'window end (UTC)':<20} stations pairs events"
+    )
     for r in rows:
         mark = "*" if r["active"] else " "
         typer.echo(
-            f"{mark} {r['version']:<34} {str(r['created'])[:25]:<26} "
-            f"{str(r['window_end'])[:25]:<26} {r['stations']!s:>8} {r['pairs']!s:>5} "
+            f"{mark} {r['version']:<34} {_seconds(r['created']):<20} "
+            f"{_seconds(r['window_end']):<20} {r['stations']!s:>8} {r['pairs']!s:>5} "
             f"{r['events']!s:>6}"
         )
+
+
+def _seconds(iso: Any) -> str:
+    """An ISO 8601 time to whole seconds, without the zone (the header says UTC)."""
+    return str(iso or "-").replace("T", " ")[:19]
 
 
 VersionArgument = Annotated[str, typer.Argument(help="Model version id (see 'magfuse models').")]
