@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 from numpy.typing import NDArray
 
-from fusion.epochs import detect_bias_steps, split_epochs, two_sided_cusum
+from fusion.epochs import detect_bias_steps, lag1_scale, split_epochs, two_sided_cusum
 from fusion.event_gls import event_gls
 from fusion.gls_blocks import PairCovariance
 from fusion.observations import ObservationSet
@@ -41,6 +41,15 @@ def _loop_cusum(x: NDArray[np.float64], k: float) -> tuple[list[float], list[flo
     return pos, neg
 
 
+def _loop_scale(z: NDArray[np.float64]) -> float:
+    """sqrt((1 - rho)/(1 + rho)), rho = 1 + 2 r_d from first differences, as plain loops."""
+    d = [z[t + 1] - z[t] for t in range(len(z) - 1)]
+    num = sum(d[t] * d[t - 1] for t in range(1, len(d)))
+    den = sum(v * v for v in d)
+    rho = min(max(1.0 + 2.0 * num / den, 0.0), 0.9) if den > 0 else 0.0
+    return math.sqrt((1.0 - rho) / (1.0 + rho))
+
+
 def _loop_detect(
     z: NDArray[np.float64],
     *,
@@ -55,6 +64,7 @@ def _loop_detect(
 
     Returns (change index, alarm index, direction) per accepted step.
     """
+    scale = _loop_scale(z if clip is None else np.clip(z, -clip, clip))
     out: list[tuple[int, int, int]] = []
     seg = 0
     while len(out) < max_steps and len(z) - seg >= 2 * m:
@@ -70,6 +80,7 @@ def _loop_detect(
                 x = (z[t] - total / count) / math.sqrt(1.0 + 1.0 / count)
             total += z[t]
             count += 1
+            x *= scale
             if clip is not None:
                 x = min(max(x, -clip), clip)
             sp = max(0.0, sp + x - k)
@@ -275,7 +286,7 @@ def test_model_reference_is_the_literal_cusum() -> None:
     obs, rows = _series_obs([120], rng)
     z = np.full(obs.n_obs, np.nan)
     z[rows[0]] = rng.standard_normal(120) + 0.2
-    res = detect_bias_steps(obs, z, reference="model", clip=None, h=1e9)
+    res = detect_bias_steps(obs, z, reference="model", clip=None, h=1e9, serial_correlation=False)
     p = res.path("XX.S00.")
     lp, ln = _loop_cusum(z[rows[0]][20:], 0.5)
     np.testing.assert_allclose(p["cusum_pos"].to_numpy()[20:], lp, atol=1e-10)
@@ -398,3 +409,33 @@ def test_yellowstone_correction_change_is_found_in_published_station_ml() -> Non
     assert len(near) == 1 and near["direction"].iloc[0] == 1
     ynr_raw = raw.table[raw.table["station_id"] == YNR_STATION]
     assert not (np.abs(ynr_raw["change_time"].to_numpy() - when) < np.timedelta64(180, "D")).any()
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.3, 0.6])
+def test_lag1_scale_recovers_ar1_autocorrelation(rho: float) -> None:
+    """AR(1) series z_t = rho z_(t-1) + e_t: the scale is sqrt((1 - rho)/(1 + rho)).
+
+    Check value: the long-run variance of a unit-variance AR(1) series is (1 + rho)/(1 - rho)
+    (Box & Jenkins, time series analysis, AR(1) spectrum at frequency zero; from memory).
+    """
+    rng = np.random.default_rng(11)
+    n, groups = 4000, 3
+    z = np.empty(n * groups)
+    for g in range(groups):
+        e = rng.standard_normal(n) * math.sqrt(1 - rho**2)
+        x = np.empty(n)
+        x[0] = rng.standard_normal()
+        for t in range(1, n):
+            x[t] = rho * x[t - 1] + e[t]
+        z[g * n : (g + 1) * n] = x
+    group = np.repeat(np.arange(groups), n)
+    scale = lag1_scale(z, group, groups)
+    assert scale == pytest.approx(np.full(groups, math.sqrt((1 - rho) / (1 + rho))), abs=0.05)
+
+
+def test_lag1_scale_is_not_fooled_by_a_step() -> None:
+    """An iid series with a 1.5-SD level step keeps a scale near 1 (the step is one difference)."""
+    rng = np.random.default_rng(12)
+    z = rng.standard_normal(600)
+    z[300:] += 1.5
+    assert lag1_scale(z, np.zeros(600, dtype=np.int64), 1)[0] > 0.93
