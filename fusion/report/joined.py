@@ -96,8 +96,10 @@ class JoinedRows:
         Origin time of the row's event (UTC, naive).
     analysable : ndarray of bool
         Rows that carry information on the station: detected, a known unit, a finite residual,
-        and an event with at least two stations (with one station the residual is 0 by
-        construction).
+        an event with at least two stations (with one station the residual is 0 by
+        construction), and not selection-prone: where the reading's noise threshold t is
+        known, the network magnitude plus the station bias is at least 2σ above it (a reading
+        near its threshold was reported because its error was high; DESIGN §11).
     order : ndarray of int
         Row indices sorted by unit (stable), and ``unit_start`` the first position of each
         unit in it (length K + 1), for per-unit slices without a scan.
@@ -171,7 +173,19 @@ def join_rows(inputs: ReportInputs) -> JoinedRows:
         row_t = np.where(has_ev, ev_t[safe], np.datetime64("NaT", "us"))
     else:
         row_t = np.full(len(co), np.datetime64("NaT", "us"))
-    analysable = detected & (unit >= 0) & np.isfinite(residual) & has_ev & (row_n >= 2)
+    # Detections that were likely only because their error was high (the network magnitude
+    # plus the station bias within 2 sigma of the reading's noise threshold) have residuals
+    # biased upward by the selection, not by the station: leave them out of the station
+    # statistics (the "safe cells" of DESIGN §11, fallback). Unknown thresholds keep the row.
+    threshold = _column(co, "threshold", np.nan)
+    u_safe = np.where(unit >= 0, unit, 0)
+    bias = _column(st, "bias", 0.0)[u_safe] if K else np.zeros(len(co))
+    sigma = _column(st, "sigma", np.nan)[u_safe] if K else np.full(len(co), np.nan)
+    with np.errstate(invalid="ignore"):
+        selection_prone = row_mag + bias - threshold < 2.0 * sigma
+    analysable = (
+        detected & (unit >= 0) & np.isfinite(residual) & has_ev & (row_n >= 2) & ~selection_prone
+    )
     order = np.argsort(np.where(unit >= 0, unit, K), kind="stable").astype(np.int64)
     counts = np.bincount(np.where(unit >= 0, unit, K), minlength=K + 1)[:K]
     unit_start = np.concatenate(([0], np.cumsum(counts))).astype(np.int64)

@@ -25,7 +25,8 @@ mean_weight           Σ weight / n_readings: the unit's typical weight when it 
 outlier_rate          window readings with robust weight < ``outlier_weight`` / readings
                       with a robust weight
 residual_mean         robust-weighted mean residual (corrected − network magnitude) over the
-                      window's events with >= 2 stations; residual_mean_t its t ratio
+                      window's events with >= 2 stations, selection-prone readings left out
+                      (see fusion.report.joined); residual_mean_t its t ratio
 residual_sd           SD of those residuals
 distance_slope        weighted slope of residual on log10(epicentral distance / km), magnitude
                       units per decade; distance_slope_se, distance_t, distance_n
