@@ -108,11 +108,14 @@ class NetworkConfig(_Section):
 
 
 class CensoringConfig(_Section):
-    """Use of non-detections (DESIGN §11)."""
+    """Use of non-detections (DESIGN §11): network estimate and station fit."""
 
     enabled: bool = True
     soft_threshold_sd: float = Field(0.0, ge=0.0)
     min_detection_probability: float = Field(0.01, ge=0.0, lt=1.0)
+    estimate_thresholds: bool = True
+    threshold_rounds: int = Field(3, ge=1)
+    safe_cells_fallback: bool = False
 
 
 class NightlyConfig(_Section):

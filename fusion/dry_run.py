@@ -10,7 +10,11 @@ two are compared:
   stations), bias and error-SD changes of the station's current epoch, and flags that appear
   or disappear (correlated partner, new epoch, prior-dominated, uncalibrated);
 - per event: the distribution of magnitude changes and the ``top`` events that move most,
-  each with the stations whose weights moved most in it (the reason).
+  each with the stations whose weights moved most in it (the reason);
+- the use of non-detections before and after (:func:`censoring_summary`): how many events
+  were re-estimated with them (DESIGN §11.1), how many non-detections they used, and the
+  distribution of the shift censored − GLS magnitude; events left uncorrected or flagged
+  likely biased high.
 
 :meth:`DryRunReport.within_policy` checks the adoption limits of the ``[nightly]`` section.
 """
@@ -34,7 +38,7 @@ if TYPE_CHECKING:
     from fusion.network_magnitude import FusedMagnitudes
     from stations.store import StationMagnitudeStore
 
-__all__ = ["DryRunReport", "dry_run", "newest_candidate"]
+__all__ = ["DryRunReport", "censoring_summary", "dry_run", "newest_candidate"]
 
 #: Quantiles of the magnitude changes reported.
 _QUANTILES = (0.0, 0.05, 0.25, 0.5, 0.75, 0.95, 1.0)
@@ -60,6 +64,9 @@ class DryRunReport:
         n, mean, rms, max_abs and quantiles of M̂_after − M̂_before (magnitude units).
     top_events : DataFrame
         event_id, origin_time, before, after, change, reason.
+    censoring : dict
+        ``{"before": ..., "after": ...}``, each a :func:`censoring_summary` (``before`` is
+        None without an active model).
     """
 
     magnitude_type: str
@@ -72,6 +79,7 @@ class DryRunReport:
     changes: dict[str, Any]
     top_events: pd.DataFrame
     policy: dict[str, float] = field(default_factory=dict)
+    censoring: dict[str, Any] = field(default_factory=dict)
 
     def within_policy(
         self, *, max_weight_share_change: float, max_bias_change: float
@@ -116,6 +124,7 @@ class DryRunReport:
             "changes": self.changes,
             "stations": records(self.stations),
             "top_events": records(self.top_events),
+            "censoring": self.censoring,
         }
 
     def render_text(self, *, max_stations: int = 25) -> str:
@@ -158,6 +167,7 @@ class DryRunReport:
             )
         if len(self.stations) > max_stations:
             lines.append(f"... {len(self.stations) - max_stations} more stations (--json)")
+        lines += _censoring_lines(self.censoring)
         if len(self.top_events):
             lines += ["", "events that would move most:"]
             for e in self.top_events.to_dict(orient="records"):
@@ -166,6 +176,84 @@ class DryRunReport:
                     f"({e['change']:+.3f})  {e['reason']}"
                 )
         return "\n".join(lines)
+
+
+def censoring_summary(events: pd.DataFrame) -> dict[str, Any]:
+    """Use of non-detections in an event table (:class:`FusedMagnitudes` ``events``).
+
+    Returns
+    -------
+    dict
+        ``n_events`` (with a magnitude), ``n_used`` (events re-estimated with non-detections
+        or clipped readings, method ``censored_ml``), ``n_nondetections`` (non-detections they
+        used), ``shift`` (n, mean, median, max_abs, n_ge_0_1 = events moved by 0.1 or more, and
+        quantiles 5 / 25 / 50 / 75 / 95 % of censored − GLS magnitude, magnitude units),
+        ``n_uncorrected`` (flag ``censoring-uncorrected``) and ``n_likely_biased_high``.
+    """
+    mag = pd.to_numeric(events["magnitude"]).to_numpy(dtype=float)
+    has = np.isfinite(mag)
+    method = events["method"].astype(str).to_numpy() if "method" in events else None
+    used = has & (method == "censored_ml") if method is not None else np.zeros_like(has)
+    flags = events["flags"].fillna("").astype(str) if "flags" in events else None
+
+    def flagged(name: str) -> int:
+        if flags is None:
+            return 0
+        hit = flags.str.contains(f"(?:^|;){name}(?:;|$)", regex=True).to_numpy(dtype=bool)
+        return int(np.count_nonzero(hit & has))
+
+    n_nd = 0
+    if "n_nondetections_used" in events:
+        n_nd = int(pd.to_numeric(events["n_nondetections_used"]).to_numpy()[has].sum())
+    shift: dict[str, Any] = {"n": int(np.count_nonzero(used))}
+    if "censoring_shift" in events and np.any(used):
+        v = pd.to_numeric(events["censoring_shift"]).to_numpy(dtype=float)[used]
+        v = v[np.isfinite(v)]
+        if v.shape[0]:
+            shift.update(
+                mean=float(v.mean()),
+                median=float(np.median(v)),
+                max_abs=float(np.abs(v).max()),
+                n_ge_0_1=int(np.count_nonzero(np.abs(v) >= 0.1)),
+                quantiles={str(q): float(np.quantile(v, q)) for q in (0.05, 0.25, 0.5, 0.75, 0.95)},
+            )
+    return {
+        "n_events": int(np.count_nonzero(has)),
+        "n_used": int(np.count_nonzero(used)),
+        "n_nondetections": n_nd,
+        "shift": shift,
+        "n_uncorrected": flagged("censoring-uncorrected"),
+        "n_likely_biased_high": flagged("likely-biased-high"),
+    }
+
+
+def _censoring_lines(cens: dict[str, Any]) -> list[str]:
+    """Text lines of the non-detection summary (before and after)."""
+    after = cens.get("after")
+    if not after:
+        return []
+    lines = ["", "non-detections (censored likelihood, DESIGN §11):"]
+    for label in ("before", "after"):
+        c = cens.get(label)
+        if not c:
+            continue
+        text = (
+            f"  {label:<7} {c['n_used']:,} of {c['n_events']:,} events used "
+            f"{c['n_nondetections']:,} non-detections"
+        )
+        sh = c["shift"]
+        if "median" in sh:
+            q = sh["quantiles"]
+            text += (
+                f"; shift censored - GLS median {sh['median']:+.3f}, 90 % within "
+                f"[{q['0.05']:+.3f}, {q['0.95']:+.3f}], {sh['n_ge_0_1']:,} moved by 0.1 or more"
+            )
+        if c["n_uncorrected"]:
+            text += f"; {c['n_uncorrected']:,} censoring-uncorrected"
+        if c["n_likely_biased_high"]:
+            text += f"; {c['n_likely_biased_high']:,} likely-biased-high"
+        lines.append(text)
+    return lines
 
 
 def _num(value: Any) -> str:
@@ -195,7 +283,7 @@ def _station_state(registry: ModelRegistry, version: ModelVersion | None) -> pd.
     t = registry.load_table(version, "stations")
     # The current epoch of a station is its unit with the latest (or open) start.
     start = pd.to_datetime(t["epoch_start"], utc=True)
-    t = t.assign(_start=start.fillna(pd.Timestamp.min.tz_localize("UTC")))
+    t = t.assign(_start=start.fillna(pd.Timestamp.min.tz_localize("UTC").as_unit(start.dt.unit)))
     n_units = t.groupby("station_id")["unit_id"].transform("size")
     t = t.sort_values("_start").groupby("station_id", as_index=False).tail(1)
     flags = pd.Series("", index=t.index, dtype=object)
@@ -286,7 +374,7 @@ def dry_run(
         stations[f"{col}_before"] = st_before[col].reindex(ids) if len(st_before) else np.nan
         stations[f"{col}_after"] = st_after[col].reindex(ids)
         stations[f"{col}_change"] = stations[f"{col}_after"] - stations[f"{col}_before"]
-    fb = (st_before["flags"].reindex(ids) if len(st_before) else pd.Series(index=ids)).fillna("")
+    fb = (st_before["flags"].reindex(ids) if len(st_before) else pd.Series("", ids)).fillna("")
     fa = st_after["flags"].reindex(ids).fillna("")
     stations["flags_before"] = fb.astype(str)
     stations["flags_after"] = fa.astype(str)
@@ -310,6 +398,10 @@ def dry_run(
             quantiles={str(q): float(np.quantile(values, q)) for q in _QUANTILES},
         )
     top_events = _top_events(after, before, ev_before, change, n_top)
+    censoring = {
+        "before": censoring_summary(before.events) if before is not None else None,
+        "after": censoring_summary(after.events),
+    }
     return DryRunReport(
         magnitude_type=mtype,
         active_version=active_id,
@@ -320,6 +412,7 @@ def dry_run(
         stations=stations,
         changes=changes,
         top_events=top_events,
+        censoring=censoring,
     )
 
 

@@ -112,6 +112,17 @@ def _f(value: Any, fmt: str = ".2f") -> str:
     return "-" if not math.isfinite(x) else format(x, fmt)
 
 
+def _detection_bias_note(ev: dict[str, Any]) -> str:
+    """``; expected detection bias +x.xx`` when the event table carries it (fusion.thresholds)."""
+    try:
+        size = float(ev.get("expected_detection_bias", float("nan")))
+    except (TypeError, ValueError):
+        return ""
+    if not math.isfinite(size) or size <= 0.0:
+        return ""
+    return f"; expected detection bias {size:+.2f} (detections only)"
+
+
 def render_event(ex: EventExplanation) -> str:
     """The terminal view of one event: summary lines and the station table."""
     est, ev = ex.estimate, ex.event_row
@@ -131,10 +142,10 @@ def render_event(ex: EventExplanation) -> str:
         + (
             f", {int(ev.get('n_nondetections_used', 0))} non-detections used, "
             f"shift {_f(ev.get('censoring_shift'), '+.3f')}"
-            if ev.get("n_nondetections_used")
+            if ev.get("n_nondetections_used") or est.method == "censored_ml"
             else ""
         ),
-        f"flags              {', '.join(est.flags) or '-'}",
+        f"flags              {', '.join(est.flags) or '-'}" + _detection_bias_note(ev),
         f"model              {ex.model_version}",
         "",
         f"{'station':<16} {'mag':>5} {'corr':>6} {'corrected':>9} {'weight':>7} "

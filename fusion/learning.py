@@ -132,7 +132,9 @@ def learn_candidate(
             previous = registry.load_parameters(previous_id)
         except ModelNotFoundError:
             previous = None
-    model = StationModel.from_config(cfg.learn, cfg.pairs, cfg.epochs, random_state=random_state)
+    model = StationModel.from_config(
+        cfg.learn, cfg.pairs, cfg.epochs, random_state=random_state, censoring=cfg.censoring
+    )
     model.set_params(half_life_days=half_life, window_days=window)
     as_of64 = np.datetime64(end.replace(tzinfo=None), "us")
     model.fit(obs, as_of=as_of64, previous=previous)
@@ -155,6 +157,9 @@ def learn_candidate(
         "pairs": _parquet_safe(model.pair_table_),
         "epochs": _parquet_safe(model.epoch_table_),
     }
+    curves = model.nondetections_.curves
+    if curves is not None:  # estimated thresholds or the safe-cell fallback (fusion.thresholds)
+        tables["detection_curves"] = curves.table()
     version = registry.save(model.parameters_, meta, tables, now=now)
     return LearnOutcome(version, model, obs)
 
@@ -187,10 +192,15 @@ def model_summary(model: StationModel, obs: ObservationSet) -> dict[str, Any]:
     pairs = model.pair_table_
     flagged = int(pairs["flagged"].sum()) if "flagged" in pairs and len(pairs) else 0
     detected = int(obs.detected.sum())
+    with_threshold = int(np.count_nonzero(~obs.detected & np.isfinite(obs.threshold)))
+    nondet = getattr(model, "nondetections_", None)
     return {
         "n_events": int(np.unique(obs.event[obs.detected]).shape[0]),
         "n_readings": detected,
         "n_nondetections": int(obs.n_obs - detected),
+        "n_nondetections_with_threshold": with_threshold,
+        "n_clipped": int(np.count_nonzero(obs.detected & obs.clipped)),
+        "nondetections": None if nondet is None else nondet.summary(),
         "n_units": len(table),
         "n_stations": int(table["station_id"].nunique()),
         "n_prior_dominated": int(table["prior_dominated"].sum()),

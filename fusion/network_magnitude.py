@@ -130,6 +130,8 @@ class EventFlag(StrEnum):
     censoring_used = "censoring-used"
     censoring_uncorrected = "censoring-uncorrected"
     invalid_magnitude = "invalid-magnitude"
+    #: Detections only, and a detection model expects them biased high (fusion.thresholds).
+    likely_biased_high = "likely-biased-high"
 
 
 class RowFlag(StrEnum):

@@ -13,7 +13,11 @@ type:
    of stepped stations into epochs and a refit, for at most ``max_epoch_rounds`` rounds;
 5. the global parametric-bootstrap test of independence (DESIGN §10,
    :func:`fusion.pair_tests.global_independence_test`), whose refits use a fast Gaussian
-   closure warm-started at the final parameters.
+   closure warm-started at the final parameters;
+6. with ``use_nondetections``, the non-detections (DESIGN §11.2,
+   :func:`fusion.censored_fit.refit_with_nondetections`): the joint censored fit warm-started
+   from step 4's fit when thresholds are stored (or estimated), else optionally the safe-cell
+   fallback. The hand-over then carries the censored estimates.
 
 The result is handed on as :attr:`StationModel.parameters_`
 (:class:`fusion.parameters.StationParameters`); tables describe stations, pairs and epochs.
@@ -34,13 +38,14 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
-from config.model import EpochConfig, LearnConfig, PairConfig
+from config.model import CensoringConfig, EpochConfig, LearnConfig, PairConfig
 from fusion.anchors import (
     Anchor,
     AnchorKind,
     ReferenceEvents,
     read_reference_events,
 )
+from fusion.censored_fit import NondetectionOutcome, refit_with_nondetections
 from fusion.eb_priors import EBPrior
 from fusion.epochs import STEP_COLUMNS, detect_bias_steps, split_epochs
 from fusion.estimator_base import ParamsMixin
@@ -158,6 +163,19 @@ class StationModel(ParamsMixin):
         Iteration limit and tolerances of the REML-EM (:func:`fusion.reml_em.fit_reml_em`).
     random_state : int, optional
         Seed of the global test's simulations.
+    use_nondetections : bool, default=True
+        Use non-detections (with stored or estimated thresholds) and clipped readings in the
+        station fit (step 6 of the module docstring).
+    soft_threshold_sd : float, default=0.0
+        g of the soft detection threshold, magnitude units (0: hard).
+    min_detection_probability : float, default=0.01
+        Non-detections less likely than this to have been detections are left out.
+    estimate_thresholds : bool, default=True
+        Estimate missing thresholds from per-station detection curves.
+    threshold_rounds : int, default=3
+        Rounds of threshold estimation and joint fit.
+    safe_cells_fallback : bool, default=False
+        Without any threshold, fit on safe cells only (DESIGN §11.2 fallback).
 
     Attributes
     ----------
@@ -183,6 +201,8 @@ class StationModel(ParamsMixin):
         Kind, value (store it for continuity) and the network calibration uncertainty.
     as_of_ : numpy.datetime64
         Reference time of the forgetting weights.
+    nondetections_ : NondetectionOutcome
+        How the non-detections were used (mode, joint fit, detection curves, counts).
 
     Notes
     -----
@@ -214,6 +234,12 @@ class StationModel(ParamsMixin):
         tol_bias: float = 1e-4,
         tol_log_sigma: float = 1e-3,
         random_state: int | None = None,
+        use_nondetections: bool = True,
+        soft_threshold_sd: float = 0.0,
+        min_detection_probability: float = 0.01,
+        estimate_thresholds: bool = True,
+        threshold_rounds: int = 3,
+        safe_cells_fallback: bool = False,
     ) -> None:
         self.half_life_days = half_life_days
         self.window_days = window_days
@@ -236,6 +262,12 @@ class StationModel(ParamsMixin):
         self.tol_bias = tol_bias
         self.tol_log_sigma = tol_log_sigma
         self.random_state = random_state
+        self.use_nondetections = use_nondetections
+        self.soft_threshold_sd = soft_threshold_sd
+        self.min_detection_probability = min_detection_probability
+        self.estimate_thresholds = estimate_thresholds
+        self.threshold_rounds = threshold_rounds
+        self.safe_cells_fallback = safe_cells_fallback
 
     @classmethod
     def from_config(
@@ -245,13 +277,18 @@ class StationModel(ParamsMixin):
         epochs: EpochConfig,
         *,
         random_state: int | None = None,
+        censoring: CensoringConfig | None = None,
     ) -> StationModel:
         """Build from the ``[learn]``, ``[pairs]`` and ``[epochs]`` configuration sections.
+
+        ``censoring`` (the ``[censoring]`` section; default its defaults) sets the use of
+        non-detections.
 
         ``learn.reference_events_csv`` (when not empty) is read with
         :func:`fusion.anchors.read_reference_events`; a relative path is taken from the
         current directory.
         """
+        cens = censoring if censoring is not None else CensoringConfig()
         ref_events = (
             read_reference_events(learn.reference_events_csv)
             if learn.reference_events_csv
@@ -279,6 +316,12 @@ class StationModel(ParamsMixin):
             tol_bias=learn.tol_bias,
             tol_log_sigma=learn.tol_log_sigma,
             random_state=random_state,
+            use_nondetections=cens.enabled,
+            soft_threshold_sd=cens.soft_threshold_sd,
+            min_detection_probability=cens.min_detection_probability,
+            estimate_thresholds=cens.estimate_thresholds,
+            threshold_rounds=cens.threshold_rounds,
+            safe_cells_fallback=cens.safe_cells_fallback,
         )
 
     # -- validation (the constraint table of STYLE 3) ---------------------------------------
@@ -319,6 +362,16 @@ class StationModel(ParamsMixin):
         integer("min_events_per_epoch", 1)
         integer("global_test_replicates", 0)
         integer("max_iter", 1)
+        integer("threshold_rounds", 1)
+        if not (
+            isinstance(self.soft_threshold_sd, int | float)
+            and not isinstance(self.soft_threshold_sd, bool)
+            and 0 <= self.soft_threshold_sd < math.inf
+        ):
+            raise fail("soft_threshold_sd", "a float in the range [0, inf)")
+        p_min = self.min_detection_probability
+        if not (isinstance(p_min, int | float) and not isinstance(p_min, bool) and 0 <= p_min < 1):
+            raise fail("min_detection_probability", "a float in the range [0, 1)")
         try:
             AnchorKind(self.anchor)
         except ValueError:
@@ -329,7 +382,13 @@ class StationModel(ParamsMixin):
             self.reference_events, ReferenceEvents
         ):
             raise fail("reference_events", "a ReferenceEvents (see read_reference_events)")
-        for flag in ("detect_pairs", "detect_epochs"):
+        for flag in (
+            "detect_pairs",
+            "detect_epochs",
+            "use_nondetections",
+            "estimate_thresholds",
+            "safe_cells_fallback",
+        ):
             if not isinstance(getattr(self, flag), bool | np.bool_):
                 raise fail(flag, "a bool")
 
@@ -433,7 +492,14 @@ class StationModel(ParamsMixin):
         if self.detect_pairs and self.global_test_replicates > 0:
             global_test = self._global_test(units, fit, anchor, gamma, unit_station)
 
+        # Non-detections: joint censored fit (or the safe-cell fallback), DESIGN §11.2.
+        nondet = NondetectionOutcome.skipped(units, fit)
+        if self.use_nondetections:
+            nondet = self._nondetections(units, fit, anchor, gamma, unit_station)
+            fit = nondet.fit
+
         self.fit_ = fit
+        self.nondetections_ = nondet
         self.parameters_ = StationParameters(
             magnitude_type=obs.magnitude_type,
             unit_ids=np.asarray(units.station_ids, dtype=object),
@@ -526,6 +592,43 @@ class StationModel(ParamsMixin):
             prior=fit.prior,
         )
         return fit, detection.table, fit.pairs
+
+    def _nondetections(
+        self,
+        obs: ObservationSet,
+        fit: RemlEmFit,
+        anchor: Anchor,
+        gamma: NDArray[np.float64],
+        unit_station: NDArray[Any],
+    ) -> NondetectionOutcome:
+        warm = WarmStart(bias=fit.bias, sigma2=fit.sigma2, prior=fit.prior)
+
+        def refit(sub: ObservationSet) -> RemlEmFit:
+            return self._reml(
+                sub,
+                anchor,
+                gamma,
+                init=warm,
+                pairs=fit.pairs,
+                unit_station=unit_station,
+                prior=fit.prior,
+            )
+
+        return refit_with_nondetections(
+            obs,
+            fit,
+            anchor=anchor,
+            gamma=gamma,
+            unit_station=unit_station,
+            refit=refit,
+            soft_threshold_sd=float(self.soft_threshold_sd),
+            min_detection_probability=float(self.min_detection_probability),
+            estimate_thresholds=bool(self.estimate_thresholds),
+            threshold_rounds=int(self.threshold_rounds),
+            safe_cells_fallback=bool(self.safe_cells_fallback),
+            tol_bias=float(self.tol_bias),
+            tol_log_sigma=float(self.tol_log_sigma),
+        )
 
     def _global_test(
         self,
