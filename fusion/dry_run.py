@@ -28,7 +28,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from fusion.fusing import fuse_observations, resolve_version
+from fusion.fusing import fuse_with_version, resolve_version
 from fusion.learning import _latest_origin, load_window
 from stations.errors import ModelNotFoundError
 
@@ -343,8 +343,8 @@ def dry_run(
     start = end - timedelta(days=n_days)
     obs = load_window(store, mtype, start=start, end=end + timedelta(microseconds=1))
 
-    after = fuse_observations(obs, registry.load_parameters(cand), cfg)
-    before = fuse_observations(obs, registry.load_parameters(active), cfg) if active else None
+    after = fuse_with_version(obs, registry, cand, cfg)
+    before = fuse_with_version(obs, registry, active, cfg) if active else None
     ev_after = after.events.set_index("event_id")
     if before is not None:
         ev_before = before.events.set_index("event_id")["magnitude"]

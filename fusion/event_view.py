@@ -76,7 +76,7 @@ def explain_event(
     ModelNotFoundError
         If there is no active model of the type (and no version was named).
     """
-    from fusion.fusing import fuse_observations, resolve_version
+    from fusion.fusing import fuse_with_version, resolve_version
     from fusion.observations import ObservationSet
 
     frame = store.event(event_id, magnitude_type=magnitude_type)
@@ -99,7 +99,7 @@ def explain_event(
         frame = frame[frame["magnitude_type"] == magnitude_type]
     v = resolve_version(registry, magnitude_type, version)
     obs = ObservationSet.from_frame(frame, magnitude_type=magnitude_type)
-    fused = fuse_observations(obs, registry.load_parameters(v), cfg)
+    fused = fuse_with_version(obs, registry, v, cfg)
     row = {str(k): v for k, v in fused.events.iloc[0].to_dict().items()}
     return EventExplanation(fused.event(event_id), row, v.version_id, fused, frame)
 

@@ -19,9 +19,16 @@ if TYPE_CHECKING:
     from fusion.model_registry import ModelRegistry, ModelVersion
     from fusion.network_magnitude import FusedMagnitudes
     from fusion.parameters import StationParameters
+    from fusion.thresholds import DetectionCurves
     from stations.store import StationMagnitudeStore
 
-__all__ = ["FusedWindow", "fuse_observations", "fuse_window", "resolve_version"]
+__all__ = [
+    "FusedWindow",
+    "fuse_observations",
+    "fuse_window",
+    "fuse_with_version",
+    "resolve_version",
+]
 
 
 @dataclass(frozen=True, slots=True)
@@ -49,13 +56,32 @@ def resolve_version(
 
 
 def fuse_observations(
-    obs: ObservationSet, params: StationParameters, cfg: MagfuseConfig
+    obs: ObservationSet,
+    params: StationParameters,
+    cfg: MagfuseConfig,
+    *,
+    curves: DetectionCurves | None = None,
+    flag_detection: bool = False,
 ) -> FusedMagnitudes:
-    """:func:`fusion.network_magnitude.fuse_events` with the configured options."""
+    """:func:`fusion.network_magnitude.fuse_events` with the configured options.
+
+    Parameters
+    ----------
+    curves : DetectionCurves, optional
+        The model's per-station detection curves (:mod:`fusion.thresholds`); non-detections
+        without a stored threshold get the estimated one before fusing.
+    flag_detection : bool, default=False
+        Add the expected detection bias and the ``likely-biased-high`` flag to events fused
+        without non-detections (the model used the safe-cell fallback: no thresholds).
+    """
     from fusion.network_magnitude import fuse_events
 
     net, cens = cfg.network, cfg.censoring
-    return fuse_events(
+    if curves is not None and cens.enabled:
+        from fusion.thresholds import impute_thresholds
+
+        obs, _ = impute_thresholds(obs, curves.reindex(obs.station_ids))
+    fused = fuse_events(
         obs,
         params,
         confidence_level=net.confidence_level,
@@ -66,6 +92,38 @@ def fuse_observations(
         use_nondetections=cens.enabled,
         soft_threshold_sd=cens.soft_threshold_sd,
         min_detection_probability=cens.min_detection_probability,
+    )
+    if flag_detection and curves is not None:
+        from fusion.thresholds import flag_detection_bias
+
+        fused = flag_detection_bias(fused, obs, params, curves.reindex(obs.station_ids))
+    return fused
+
+
+def fuse_with_version(
+    obs: ObservationSet, registry: ModelRegistry, version: ModelVersion, cfg: MagfuseConfig
+) -> FusedMagnitudes:
+    """Fuse with a stored version: its parameters and, when it has them, its detection curves
+    (thresholds for non-detections that lack one; the likely-biased-high flag when the model
+    fell back to safe cells)."""
+    from stations.errors import ModelNotFoundError
+
+    curves = None
+    try:
+        table = registry.load_table(version, "detection_curves")
+    except ModelNotFoundError:
+        table = None
+    if table is not None and len(table):
+        from fusion.thresholds import DetectionCurves
+
+        curves = DetectionCurves.from_table(table)
+    mode = ((version.meta.get("nondetections") or {}).get("mode")) or ""
+    return fuse_observations(
+        obs,
+        registry.load_parameters(version),
+        cfg,
+        curves=curves,
+        flag_detection=mode == "safe-cells",
     )
 
 
@@ -89,6 +147,5 @@ def fuse_window(
         If the window holds no rows of that type.
     """
     v = resolve_version(registry, magnitude_type, version)
-    params = registry.load_parameters(v)
     obs = load_window(store, magnitude_type, start=start, end=end)
-    return FusedWindow(fuse_observations(obs, params, cfg), v, obs)
+    return FusedWindow(fuse_with_version(obs, registry, v, cfg), v, obs)

@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING
 
 import pandas as pd
 
-from fusion.fusing import fuse_observations, resolve_version
+from fusion.fusing import fuse_with_version, resolve_version
 from fusion.learning import load_window
 
 if TYPE_CHECKING:
@@ -64,7 +64,7 @@ def write_model_report(
     if start is None and meta.get("window_start"):
         start = datetime.fromisoformat(str(meta["window_start"]))
     obs = load_window(store, mtype, start=start, end=end + timedelta(microseconds=1))
-    fused = fuse_observations(obs, registry.load_parameters(v), cfg)
+    fused = fuse_with_version(obs, registry, v, cfg)
     inputs = ReportInputs(
         model_meta=meta,
         stations=registry.load_table(v, "stations"),
