@@ -39,6 +39,7 @@ import pandas as pd
 from fusion.gls_blocks import PairCovariance
 from fusion.parameters import StationParameters
 from stations.errors import ModelNotFoundError, StoreCorruptError
+from stations.store.atomic import fsync_dir, write_bytes_atomic
 
 __all__ = [
     "ModelRegistry",
@@ -124,31 +125,14 @@ def parameters_from_frames(
     )
 
 
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def _write_json_atomic(path: Path, payload: Mapping[str, Any]) -> None:
-    # Temporary files of a writer killed before its rename are garbage: the caller holds the
-    # lock, so no other writer is using one now.
-    for stale in path.parent.glob(f".{path.name}.*"):
-        stale.unlink(missing_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(payload, fh, indent=2, sort_keys=True, default=str)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
-    _fsync_dir(path.parent)
+    """Replace ``path`` by the JSON of ``payload`` atomically (the caller holds the lock).
+
+    The temporary name is fixed (``stations.store.atomic``), so a writer killed before its
+    rename leaves a file that the next write simply overwrites.
+    """
+    text = json.dumps(payload, indent=2, sort_keys=True, default=str)
+    write_bytes_atomic(path, text.encode("utf-8"))
 
 
 class ModelRegistry:
@@ -245,7 +229,7 @@ class ModelRegistry:
                         with open(f, "rb") as fh:
                             os.fsync(fh.fileno())
                 os.rename(tmp, final)
-                _fsync_dir(final.parent)
+                fsync_dir(final.parent)
             except BaseException:
                 shutil.rmtree(tmp, ignore_errors=True)
                 raise
