@@ -15,9 +15,9 @@ from fusion.cli.common import (
     UntilOption,
     compute_setup,
     load,
+    open_store,
     parse_time,
     print_advisory,
-    store_path,
 )
 
 __all__ = ["compute_command", "register"]
@@ -42,14 +42,11 @@ def compute_command(
     become a new store revision; the old ones stay retrievable.
     """
     from stations.ingest import recompute_window
-    from stations.store import StationMagnitudeStore
 
     cfg = load(config)
     mtype = type or cfg.learn.magnitude_type
     options, metadata = compute_setup(cfg, stations)
-    st = StationMagnitudeStore.open(
-        store_path(cfg.store.path, store), create=False, lock_timeout_s=cfg.store.lock_timeout_s
-    )
+    st = open_store(cfg, store)
     start: datetime | None = parse_time(since, "--since")
     end: datetime | None = parse_time(until, "--until")
     outcome = recompute_window(
