@@ -153,7 +153,7 @@ from fusion.censoring import (
     tobit_derivatives,
     truncated_normal_moments,
 )
-from fusion.eb_priors import EBPrior, fit_bias_prior, fit_variance_prior
+from fusion.eb_priors import EBPrior, prior_stable, refreshed_prior
 from fusion.forgetting import match_previous_units, unit_station_ids
 from fusion.gls_blocks import PairCovariance, pair_partner_rows, precision_row_weights
 from fusion.observations import ObservationSet
@@ -1228,7 +1228,7 @@ def fit_censored_stations(
         done = it >= 2 and err_b < tol_bias and err_s < tol_log_sigma
         if refresh_due or (done and eb_on):
             new_prior = _refresh_prior(c, es, ow, ss, b, prior, mu0, active)
-            stable = _prior_stable(prior, new_prior, tol_log_sigma)
+            stable = prior_stable(prior, new_prior, tol_log_sigma)
             prior = new_prior
             tau2_floor = _TAU2_FLOOR * prior.s0_2
             if not stable:
@@ -1424,30 +1424,11 @@ def _refresh_prior(
     s2 = np.full(c.n_st, np.nan)
     pos = active & (dof > 0)
     s2[pos] = ss.q_data[pos] / dof[pos]
-    fitted = fit_variance_prior(s2, dof)
-    d0, s0_2 = fitted if fitted is not None else (prior.d0, prior.s0_2)
     diag = _diagonal_information(c, es)
     var = np.full(c.n_st, np.inf)
     ok = active & (diag > 0)
     var[ok] = 1.0 / diag[ok]
-    wsum = c.per_station(c.d_st, c.d_g)
-    tau = fit_bias_prior(b, var, wsum, prior_mean=mu0, current_tau_b2=prior.tau_b2)
-    return EBPrior(d0=d0, s0_2=s0_2, tau_b2=prior.tau_b2 if tau is None else tau)
-
-
-def _prior_stable(old: EBPrior, new: EBPrior, tol_log_sigma: float) -> bool:
-    """The refreshed priors moved by less than the tolerances (relative)."""
-
-    def close(x: float, y: float, rtol: float) -> bool:
-        if np.isinf(x) or np.isinf(y) or x == 0 or y == 0:
-            return x == y
-        return bool(abs(np.log(x / y)) < rtol)
-
-    return (
-        close(old.s0_2, new.s0_2, 2.0 * tol_log_sigma)
-        and close(old.d0, new.d0, 0.05)
-        and close(old.tau_b2, new.tau_b2, 0.02)
-    )
+    return refreshed_prior(s2, dof, b, var, c.per_station(c.d_st, c.d_g), prior, mu0)
 
 
 # ------------------------------------------------------------------------------------------

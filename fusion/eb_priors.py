@@ -52,6 +52,8 @@ __all__ = [
     "fit_variance_prior",
     "initial_error_variance",
     "moderated_variance",
+    "prior_stable",
+    "refreshed_prior",
     "trigamma_inverse",
 ]
 
@@ -312,3 +314,50 @@ def _event_median(
     hi = start[has] + counts[has] // 2
     out[has] = 0.5 * (xs[lo] + xs[hi])
     return out
+
+
+def refreshed_prior(
+    s2: NDArray[np.float64],
+    dof: NDArray[np.float64],
+    bias: NDArray[np.float64],
+    bias_var: NDArray[np.float64],
+    weight_sum: NDArray[np.float64],
+    prior: EBPrior,
+    prior_mean: float,
+) -> EBPrior:
+    """The empirical-Bayes refresh of (d0, s0², τ_b²) shared by the estimators (DESIGN §5.2).
+
+    Parameters
+    ----------
+    s2, dof : ndarray, shape (K,)
+        Raw residual variances and their effective degrees of freedom
+        (:func:`fit_variance_prior`).
+    bias, bias_var, weight_sum : ndarray, shape (K,)
+        Current biases, their sampling variances and Σγ per station (:func:`fit_bias_prior`).
+    prior : EBPrior
+        The current priors; a part that cannot be fitted keeps its current value.
+    prior_mean : float
+        μ0 of the bias prior.
+    """
+    fitted = fit_variance_prior(s2, dof)
+    d0, s0_2 = fitted if fitted is not None else (prior.d0, prior.s0_2)
+    tau = fit_bias_prior(
+        bias, bias_var, weight_sum, prior_mean=prior_mean, current_tau_b2=prior.tau_b2
+    )
+    return EBPrior(d0=d0, s0_2=s0_2, tau_b2=prior.tau_b2 if tau is None else tau)
+
+
+def prior_stable(old: EBPrior, new: EBPrior, tol_log_sigma: float) -> bool:
+    """The refreshed priors moved by less than the tolerances (relative): s0² by
+    2·``tol_log_sigma`` in log, d0 by 5 %, τ_b² by 2 %."""
+
+    def close(x: float, y: float, rtol: float) -> bool:
+        if np.isinf(x) or np.isinf(y) or x == 0 or y == 0:
+            return x == y
+        return bool(abs(np.log(x / y)) < rtol)
+
+    return (
+        close(old.s0_2, new.s0_2, 2.0 * tol_log_sigma)
+        and close(old.d0, new.d0, 0.05)
+        and close(old.tau_b2, new.tau_b2, 0.02)
+    )

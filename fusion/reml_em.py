@@ -110,9 +110,9 @@ from fusion.eb_priors import (
     DEFAULT_D0,
     DEFAULT_TAU_B2,
     EBPrior,
-    fit_bias_prior,
-    fit_variance_prior,
     initial_error_variance,
+    prior_stable,
+    refreshed_prior,
 )
 from fusion.forgetting import WarmStart, match_previous_units, unit_station_ids, warm_start
 from fusion.gls_blocks import PairCovariance, pair_partner_rows
@@ -918,28 +918,10 @@ def _refresh_prior(
     dof = _dof(d, nm)
     with np.errstate(invalid="ignore", divide="ignore"):
         s2 = sums.q / dof
-    fitted = fit_variance_prior(s2, dof)
-    d0, s0_2 = fitted if fitted is not None else (prior.d0, prior.s0_2)
     info = _diag_data_information(d, w, nm)
     with np.errstate(divide="ignore"):
         var = np.where(info > 0, 1.0 / info, np.inf)
-    tau = fit_bias_prior(b, var, d.g_count, prior_mean=mu0, current_tau_b2=prior.tau_b2)
-    return EBPrior(d0=d0, s0_2=s0_2, tau_b2=prior.tau_b2 if tau is None else tau)
-
-
-def _prior_stable(old: EBPrior, new: EBPrior, tol_log_sigma: float) -> bool:
-    """The refreshed priors moved by less than the tolerances (relative)."""
-
-    def close(x: float, y: float, rtol: float) -> bool:
-        if np.isinf(x) or np.isinf(y) or x == 0 or y == 0:
-            return x == y
-        return bool(abs(np.log(x / y)) < rtol)
-
-    return (
-        close(old.s0_2, new.s0_2, 2.0 * tol_log_sigma)
-        and close(old.d0, new.d0, 0.05)
-        and close(old.tau_b2, new.tau_b2, 0.02)
-    )
+    return refreshed_prior(s2, dof, b, var, d.g_count, prior, mu0)
 
 
 class _ConvergenceTracker:
@@ -1297,7 +1279,7 @@ def fit_reml_em(
         done = it >= 2 and err_b < tol_bias and err_s < tol_log_sigma and dls < tol_log_sigma
         if refresh_due or (done and eb_on):
             new_prior = _refresh_prior(d, b, nm, w, sums, prior, mu0)
-            stable = _prior_stable(prior, new_prior, tol_log_sigma)
+            stable = prior_stable(prior, new_prior, tol_log_sigma)
             if it == 1 and not stable:
                 minv = None  # the first refresh moves s0² and τ_b² far from their start
             if not stable:
