@@ -157,7 +157,12 @@ from fusion.eb_priors import EBPrior, prior_stable, refreshed_prior
 from fusion.forgetting import match_previous_units, unit_station_ids
 from fusion.gls_blocks import PairCovariance, pair_partner_rows, precision_row_weights
 from fusion.observations import ObservationSet
-from fusion.reml_em import RemlEmFit, t_weight_consistency
+from fusion.reml_em import (
+    ConvergenceTracker,
+    RemlEmFit,
+    squarem_step,
+    t_weight_consistency,
+)
 from stations.errors import ConfigError, ConvergenceWarning, InsufficientDataError
 
 if TYPE_CHECKING:
@@ -957,60 +962,7 @@ def _anchor_result(base: AnchorResult, an: _Anchoring, b: NDArray[np.float64]) -
 
 
 # ------------------------------------------------------------------------------------------
-# Convergence helpers
-# ------------------------------------------------------------------------------------------
-
-
-class _Tracker:
-    """Distance to the fixed point: last step × max(1, ρ/(1 − ρ)), ρ the observed rate."""
-
-    def __init__(self) -> None:
-        self.last: tuple[float, float] | None = None
-        self.ratios: list[list[float]] = [[], []]
-
-    def reset(self) -> None:
-        """The next step does not follow the last one by a plain iteration."""
-        self.last = None
-
-    def add(self, db: float, dls: float) -> None:
-        if self.last is not None:
-            for k, (prev, cur) in enumerate(zip(self.last, (db, dls), strict=True)):
-                if prev > 0 and cur < prev:
-                    self.ratios[k] = [*self.ratios[k][-4:], cur / prev]
-        self.last = (db, dls)
-
-    @property
-    def rate(self) -> float:
-        """The last observed step ratio of b or log σ (the larger), 0 when unknown."""
-        return max(self.ratios[0][-1:] + self.ratios[1][-1:], default=0.0)
-
-    def distance(self) -> tuple[float, float]:
-        if self.last is None:
-            return np.inf, np.inf
-        out = []
-        for k in (0, 1):
-            rho = min(max(self.ratios[k]), 0.99) if self.ratios[k] else 0.99
-            out.append(self.last[k] * max(rho / (1.0 - rho), 1.0))
-        return out[0], out[1]
-
-
-def _squarem(
-    t0: NDArray[np.float64], t1: NDArray[np.float64], t2: NDArray[np.float64], max_alpha: float
-) -> NDArray[np.float64] | None:
-    """SQUAREM S3 extrapolation (Varadhan & Roland 2008): t0 − 2αr + α²v, α = −‖r‖/‖v‖."""
-    r = t1 - t0
-    v = t2 - 2.0 * t1 + t0
-    nv = float(np.linalg.norm(v))
-    if nv == 0.0:
-        return None
-    alpha = max(-float(np.linalg.norm(r)) / nv, -max_alpha)
-    if alpha >= -1.0:
-        return None
-    return np.asarray(t0 - 2.0 * alpha * r + alpha * alpha * v, dtype=np.float64)
-
-
-# ------------------------------------------------------------------------------------------
-# The fit
+# The fit (convergence: fusion.reml_em.ConvergenceTracker and squarem_step)
 # ------------------------------------------------------------------------------------------
 
 
@@ -1197,7 +1149,7 @@ def fit_censored_stations(
             es = _event_step(c, b, sigma2, ow.omega, es.M, start.pairs, soft, newton_max_iter)
         return es, ow
 
-    tracker = _Tracker()
+    tracker = ConvergenceTracker()
     theta: list[NDArray[np.float64]] = []
     max_alpha = _MAX_ALPHA
     post_jump: float | None = None
@@ -1233,7 +1185,7 @@ def fit_censored_stations(
             tau2_floor = _TAU2_FLOOR * prior.s0_2
             if not stable:
                 theta.clear()
-                tracker.reset()
+                tracker.break_chain()
                 if done:
                     continue
         if done:
@@ -1243,8 +1195,8 @@ def fit_censored_stations(
             max_alpha = max(1.0, 0.5 * max_alpha)  # the jump overshot: be more careful
         post_jump = None
         theta.append(np.concatenate([b[active], np.log(sigma2[active])]))
-        if accelerate and len(theta) >= 3 and tracker.rate > 0.6:
-            jumped = _squarem(theta[-3], theta[-2], theta[-1], max_alpha)
+        if accelerate and len(theta) >= 3 and tracker.max_rate > 0.6:
+            jumped = squarem_step(theta[-3], theta[-2], theta[-1], max_alpha)
             if jumped is not None:
                 n_a = int(active.sum())
                 b = b.copy()
@@ -1255,7 +1207,7 @@ def fit_censored_stations(
                 b, M = _reanchor(b, M, an, g_all)
                 post_jump = max(db, dls)
                 theta.clear()
-                tracker.reset()
+                tracker.break_chain()
     if not converged:
         warnings.warn(
             f"fit_censored_stations stopped at max_iter={max_iter} before the distance to the "

@@ -924,7 +924,7 @@ def _refresh_prior(
     return refreshed_prior(s2, dof, b, var, d.g_count, prior, mu0)
 
 
-class _ConvergenceTracker:
+class ConvergenceTracker:
     """Distance of the iterate to the EM fixed point, for b and log σ (module docstring).
 
     EM converges linearly, Δ_{k+1} ≈ ρ Δ_k, so the remaining distance is about Δ_k ρ/(1 − ρ)
@@ -955,6 +955,11 @@ class _ConvergenceTracker:
         """Observed rate of the σ iteration (last ratio), 0 when unknown."""
         return self.ratios[1][-1] if self.ratios[1] else 0.0
 
+    @property
+    def max_rate(self) -> float:
+        """The last observed step ratio of b or log σ (the larger), 0 when unknown."""
+        return max(self.ratios[0][-1:] + self.ratios[1][-1:], default=0.0)
+
     def distance(self) -> tuple[float, float]:
         if self.last is None:
             return np.inf, np.inf
@@ -966,7 +971,7 @@ class _ConvergenceTracker:
         return out[0], out[1]
 
 
-def _squarem(
+def squarem_step(
     t0: NDArray[np.float64], t1: NDArray[np.float64], t2: NDArray[np.float64], max_alpha: float
 ) -> NDArray[np.float64] | None:
     """One SQUAREM extrapolation from three consecutive EM iterates (Varadhan & Roland 2008).
@@ -1218,7 +1223,7 @@ def fit_reml_em(
     eb_on = eb_every > 0
     last_db = 1.0
     cg_iterations: list[int] = []
-    tracker = _ConvergenceTracker()
+    tracker = ConvergenceTracker()
     theta: list[NDArray[np.float64]] = []
     max_alpha = 50.0
     post_jump: float | None = None
@@ -1297,7 +1302,7 @@ def fit_reml_em(
         post_jump = None
         theta.append(np.log(sigma2))
         if accelerate and len(theta) >= 3 and tracker.rate > 0.6:
-            jumped = _squarem(theta[-3], theta[-2], theta[-1], max_alpha)
+            jumped = squarem_step(theta[-3], theta[-2], theta[-1], max_alpha)
             if jumped is not None:
                 log_s0 = np.log(prior.s0_2)
                 sigma2 = np.exp(np.clip(jumped, log_s0 - 12.0, log_s0 + 12.0))
