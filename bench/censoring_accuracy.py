@@ -5,20 +5,23 @@ above 1.0, three correlated pairs, 1 % outlier cells; a station reports only whe
 magnitude clears t_ij = t0_i + 1.2 log10(Δ/10 km), and its non-detections are stored with t_ij)
 is run for several seeds. Side by side, on the same events (every event with a detection):
 
-- ``oracle Tobit``: the censored network estimate (:func:`fusion.network_magnitude.fuse_events`,
+- ``oracle Tobit``: the censored network estimate
+  (:func:`fusion.network.network_magnitude.fuse_events`,
   ``use_nondetections=True``) with the true biases, error SDs and thresholds;
 - ``det-only oracle``: GLS of the detections with the true parameters
-  (:func:`fusion.simulation.oracle_estimate`), the oracle that ignores non-detections;
-- ``det-only REML``: the station model fitted on detections (:func:`fusion.reml_em.fit_reml_em`)
+  (:func:`fusion.model.simulation.oracle_estimate`), the oracle that ignores non-detections;
+- ``det-only REML``: the station model fitted on detections
+  (:func:`fusion.model.reml_em.fit_reml_em`)
   and the GLS of the detections;
 - ``REML + Tobit``: the same parameters, censored network estimate;
-- ``joint``: the joint censored fit (:func:`fusion.censored_fit.fit_censored_stations`, mixture
+- ``joint``: the joint censored fit (:func:`fusion.model.censored_fit.fit_censored_stations`,
+  mixture
   outlier model), censored network estimate — the issue-7 method;
 - ``joint t(4)`` and ``joint none``: the joint fit with the Student-t or no outlier model;
 - ``thr +0.1`` / ``thr −0.1`` / ``thr N(0,.15²)``: every stored threshold wrong by that much,
   in the fit and in the network estimate (DESIGN §11.2 sensitivity);
 - ``estimated thr``: thresholds hidden, estimated from probit detection curves
-  (:func:`fusion.censored_fit.refit_with_nondetections`, 3 rounds);
+  (:func:`fusion.model.censored_fit.refit_with_nondetections`, 3 rounds);
 - ``safe cells``: no non-detection stored at all; the DESIGN §11.2 fallback (fit on safe cells,
   detections-only network estimate).
 
@@ -48,14 +51,19 @@ from typing import Any
 
 import numpy as np
 
-from fusion.anchors import Anchor
-from fusion.censored_fit import fit_censored_stations, refit_with_nondetections
-from fusion.gls_blocks import PairCovariance
-from fusion.network_magnitude import fuse_events
+from fusion.model.anchors import Anchor
+from fusion.model.censored_fit import fit_censored_stations, refit_with_nondetections
+from fusion.model.parameters import StationParameters
+from fusion.model.reml_em import RemlEmFit, fit_reml_em
+from fusion.model.simulation import (
+    SimulatedNetwork,
+    SimulationConfig,
+    oracle_estimate,
+    simulate_network,
+)
+from fusion.network.gls_blocks import PairCovariance
+from fusion.network.network_magnitude import fuse_events
 from fusion.observations import ObservationSet
-from fusion.parameters import StationParameters
-from fusion.reml_em import RemlEmFit, fit_reml_em
-from fusion.simulation import SimulatedNetwork, SimulationConfig, oracle_estimate, simulate_network
 
 BINS = ((1.0, 1.5), (1.5, 2.0), (2.0, 2.5), (2.5, np.inf))
 DESIGN_SIM = {  # DESIGN §11.2 [sim] rows (b RMSE, median σ̂/σ, event bias, RMSE, coverage)

@@ -8,7 +8,7 @@ interleaved (one round = one of each, so drift hits all three alike):
 - ``python -c "import pandas, pyarrow"`` (the floor of any command that reads Parquet);
 - the libraries the event path needs short of ``scipy.stats`` (pandas, pyarrow's parquet and
   compute, typer, pydantic, ``scipy.special``): what the command would cost if its only use of
-  ``scipy.stats`` (``fusion/censoring.py``, the normal log-density) were written with numpy;
+  ``scipy.stats`` (``fusion/network/censoring.py``, the normal log-density) were written with numpy;
 - ``magfuse event EVENT_ID --store STORE`` for several events (the installed console script);
 - the same command with ``scipy.stats`` replaced, before anything imports it, by a module whose
   ``norm.logpdf`` is the numpy formula -z²/2 - log sqrt(2 pi): the proposed fix, measured
@@ -21,9 +21,10 @@ what.
 
 The store is built with the vectorised builder of ``bench/store_bench.py`` (default 10 million
 rows: 2,000 stations, 500,000 events, one batch per origin month) unless ``--store`` names an
-existing one. The model is **synthetic**: a :class:`~fusion.parameters.StationParameters`
+existing one. The model is **synthetic**: a :class:`~fusion.model.parameters.StationParameters`
 with one unit per station (biases N(0, 0.15²), error SDs 0.15-0.35, no pairs) saved through
-:class:`~fusion.model_registry.ModelRegistry` and adopted. Learning on 10 million rows is the
+:class:`~fusion.versions.model_registry.ModelRegistry` and adopted. Learning on 10 million rows is
+the
 job of ``bench/fit_speed.py``; ``magfuse event`` only reads a stored version, whatever fitted it.
 
 Usage::
@@ -50,9 +51,9 @@ from typing import Any
 import numpy as np
 import pyarrow.parquet as pq
 
-from fusion.gls_blocks import PairCovariance
-from fusion.model_registry import ModelRegistry
-from fusion.parameters import StationParameters
+from fusion.model.parameters import StationParameters
+from fusion.network.gls_blocks import PairCovariance
+from fusion.versions.model_registry import ModelRegistry
 from stations.store import StationMagnitudeStore
 
 HERE = Path(__file__).resolve().parent
@@ -87,10 +88,10 @@ import json, sys, time
 t0 = time.perf_counter()
 import fusion.cli.app
 t1 = time.perf_counter()
-from config import load_config
+from fusion.settings import load_config
 from fusion.cli.common import open_registry, open_store
-from fusion.event_view import explain_event, render_event
-import fusion.fusing, fusion.network_magnitude, fusion.observations
+from fusion.workflows.event_view import explain_event, render_event
+import fusion.workflows.fusing, fusion.network.network_magnitude, fusion.observations
 t2 = time.perf_counter()
 cfg = load_config()
 st = open_store(cfg, __import__("pathlib").Path(sys.argv[1]))

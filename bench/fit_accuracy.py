@@ -3,14 +3,14 @@
 For several seeds and the missingness modes ``mar`` and ``select_m`` (K = 40 stations, N = 4000
 events, three co-located pairs with ρ = 0.4, 0.5, 0.6, 1 % outlier cells; ``mar-clean`` without
 outliers, where the oracle is the true efficiency bound) the full
-:class:`fusion.station_model.StationModel` is fitted (pairs on, epochs off, no forgetting).
+:class:`fusion.model.station_model.StationModel` is fitted (pairs on, epochs off, no forgetting).
 Event magnitudes are the DESIGN §8.1 GLS estimate with s_i² = σ̃_i²/ω_ij + Var(b̂_i) and the
-flagged pair covariances (:func:`fusion.event_gls.event_gls`), SE_j = sqrt(V_j).
+flagged pair covariances (:func:`fusion.network.event_gls.event_gls`), SE_j = sqrt(V_j).
 
 Metrics (DESIGN §13), pooled over seeds:
 
 - event RMSE for events whose stations all have >= 100 readings, and its ratio to the oracle
-  (GLS with the true biases and covariance, :func:`fusion.simulation.oracle_estimate`), to the
+  (GLS with the true biases and covariance, :func:`fusion.model.simulation.oracle_estimate`), to the
   plain mean and to the median of the raw readings (all put on the true level: REML-EM and the
   plain estimators are shifted by the mean true bias, the level the sum-zero anchor implies);
 - bias RMSE after anchor alignment (b̂ − mean b̂ vs b − mean b) for stations with >= 200
@@ -23,7 +23,7 @@ Metrics (DESIGN §13), pooled over seeds:
   between the step and the alarm (CUSUM k = 0.5, h = 5 and h = 8), and false alarms per
   1,000 readings on the other stations.
 
-An ablation line runs :func:`fusion.reml_em.fit_reml_em` with the literal DESIGN §5 σ-step
+An ablation line runs :func:`fusion.model.reml_em.fit_reml_em` with the literal DESIGN §5 σ-step
 (``scale_consistency=False``) next to the default.
 
 Usage::
@@ -41,11 +41,16 @@ from typing import Any
 
 import numpy as np
 
-from fusion.anchors import Anchor
-from fusion.event_gls import event_gls
-from fusion.reml_em import fit_reml_em
-from fusion.simulation import SimulatedNetwork, SimulationConfig, oracle_estimate, simulate_network
-from fusion.station_model import StationModel
+from fusion.model.anchors import Anchor
+from fusion.model.reml_em import fit_reml_em
+from fusion.model.simulation import (
+    SimulatedNetwork,
+    SimulationConfig,
+    oracle_estimate,
+    simulate_network,
+)
+from fusion.model.station_model import StationModel
+from fusion.network.event_gls import event_gls
 
 TARGETS = {
     "rmse_ratio_oracle": "<= 1.05",

@@ -104,8 +104,8 @@ def _plain_passes(obs: Any, n: int = 30) -> float:
 
 def run_one(n_rows: int, solver: str, seed: int, n_stations: int = 2000) -> dict[str, Any]:
     """Generate, time 30 plain passes, fit once; returns the measurements."""
-    from fusion.anchors import Anchor
-    from fusion.reml_em import fit_reml_em
+    from fusion.model.anchors import Anchor
+    from fusion.model.reml_em import fit_reml_em
 
     t = time.perf_counter()
     obs, bias, sigma = generate(n_rows, n_stations=n_stations, seed=seed)

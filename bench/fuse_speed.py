@@ -1,4 +1,4 @@
-"""Speed of :func:`fusion.network_magnitude.fuse_events` next to one pass over the columns.
+"""Speed of :func:`fusion.network.network_magnitude.fuse_events` next to one pass over the columns.
 
 Builds a synthetic observation set (default 500,000 events, about 20 rows each, 300 stations,
 three flagged pairs, two stations with two epochs, a few rows of a station the model does not
@@ -23,10 +23,10 @@ import warnings
 
 import numpy as np
 
-from fusion.gls_blocks import PairCovariance
-from fusion.network_magnitude import fuse_events
+from fusion.model.parameters import StationParameters
+from fusion.network.gls_blocks import PairCovariance
+from fusion.network.network_magnitude import fuse_events
 from fusion.observations import ObservationSet
-from fusion.parameters import StationParameters
 
 
 def build(n_events: int, rows_per_event: float, n_stations: int, seed: int):

@@ -3,7 +3,8 @@
 Simulates the nightly job of the issue: every night it marks final the events older than the
 revision horizon (:meth:`FusedStore.finalize`) and re-fuses the events of the horizon
 (:meth:`FusedStore.write_run`), so each night adds two runs. The fused results come from one
-:func:`fusion.network_magnitude.fuse_events` call on a seeded synthetic network (DESIGN §13),
+:func:`fusion.network.network_magnitude.fuse_events` call on a seeded synthetic network (DESIGN
+§13),
 sliced per night; the store cost does not depend on the values.
 
 Two stores get the same nights side by side: one never compacts (``compact_after=None``), one
@@ -39,10 +40,10 @@ from pathlib import Path
 import numpy as np
 import pyarrow.parquet as pq
 
-from fusion.fused_store import FusedStore
-from fusion.network_magnitude import FusedMagnitudes, fuse_events
-from fusion.parameters import StationParameters
-from fusion.simulation import SimulationConfig, simulate_network
+from fusion.model.parameters import StationParameters
+from fusion.model.simulation import SimulationConfig, simulate_network
+from fusion.network.network_magnitude import FusedMagnitudes, fuse_events
+from fusion.versions.fused_store import FusedStore
 
 START = datetime(2025, 1, 1, tzinfo=UTC)
 

@@ -3,7 +3,7 @@
 Builds synthetic inputs of a 2,000-station network (default): station coordinates in a
 1,000 × 1,000 km box, 100,000 events seen by the stations within 55 km (about 17 readings
 each, ~1.7 million contribution rows), true biases and error SDs as the model, fused with
-:func:`fusion.network_magnitude.fuse_events`; 1 % outlier readings; 30 stations with a
+:func:`fusion.network.network_magnitude.fuse_events`; 1 % outlier readings; 30 stations with a
 distance trend (slope 0.3 per decade) and 30 with a saturation trend; 40 flagged correlated
 pairs; 25 drift alarms; two epochs for 20 stations. Then times, in the same run:
 
@@ -29,10 +29,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fusion.gls_blocks import PairCovariance
-from fusion.network_magnitude import fuse_events
+from fusion.model.parameters import StationParameters
+from fusion.network.gls_blocks import PairCovariance
+from fusion.network.network_magnitude import fuse_events
 from fusion.observations import ObservationSet
-from fusion.parameters import StationParameters
 from fusion.report import ReportInputs, station_reliability_table, write_station_report
 from fusion.report.joined import join_rows
 from fusion.report.station_table import write_station_table

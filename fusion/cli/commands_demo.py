@@ -26,6 +26,6 @@ def demo_command(
     Runs on the invented demo network shipped in sample_events/ and scores the network
     magnitudes against the demo's known truth.
     """
-    from fusion.demo import run_demo
+    from fusion.workflows.demo import run_demo
 
     run_demo(workdir, echo=typer.echo)

@@ -21,7 +21,7 @@ from fusion.cli.common import (
 )
 
 if TYPE_CHECKING:
-    from fusion.model_registry import ModelVersion
+    from fusion.versions.model_registry import ModelVersion
 
 __all__ = ["register"]
 
@@ -96,7 +96,7 @@ def learn_command(
     The candidate is not adopted: compare it with 'magfuse diff' and switch with
     'magfuse adopt'. Its station, pair and epoch tables are stored with it (Parquet).
     """
-    from fusion.learning import learn_candidate
+    from fusion.workflows.learning import learn_candidate
 
     cfg = load(config)
     st = open_store(cfg, store)

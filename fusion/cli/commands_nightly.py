@@ -48,7 +48,7 @@ def nightly_command(
     Exit status: 0 success; 1 failure (nothing reliable was done); 3 needs review (a rejected
     file, or a candidate outside the adoption policy). Without --apply nothing is adopted.
     """
-    from fusion.nightly import run_nightly
+    from fusion.workflows.nightly import run_nightly
     from stations.metadata import StationMetadata
 
     cfg = load(config)

@@ -46,8 +46,8 @@ def fuse_command(
 
     Events whose stored magnitude is marked final are left as they are.
     """
-    from fusion.fused_store import FusedStore
-    from fusion.fusing import fuse_window
+    from fusion.versions.fused_store import FusedStore
+    from fusion.workflows.fusing import fuse_window
 
     cfg = load(config)
     st = open_store(cfg, store)
@@ -87,7 +87,7 @@ def finalize_command(
     config: ConfigOption = None,
 ) -> None:
     """Mark fused magnitudes final: later runs never change them."""
-    from fusion.fused_store import FusedStore
+    from fusion.versions.fused_store import FusedStore
     from stations.errors import ConfigError
 
     if not event_ids and before is None:
@@ -137,8 +137,8 @@ def export_command(
     every column with its unit.
     """
     from fusion.export import export_magnitudes, export_model_table
-    from fusion.fused_store import FusedStore
-    from fusion.fusing import resolve_version
+    from fusion.versions.fused_store import FusedStore
+    from fusion.workflows.fusing import resolve_version
     from stations.errors import ConfigError
 
     cfg = load(config)
@@ -180,7 +180,7 @@ def report_command(
     config: ConfigOption = None,
 ) -> None:
     """Write the per-station reliability report (HTML with plots, CSV and Parquet tables)."""
-    from fusion.reporting import write_model_report
+    from fusion.workflows.reporting import write_model_report
     from stations.metadata import StationMetadata
 
     cfg = load(config)

@@ -46,7 +46,7 @@ def event_command(
     config: ConfigOption = None,
 ) -> None:
     """Explain one event's network magnitude: weights, residuals, leave-one-out checks."""
-    from fusion.event_view import explain_event, render_event
+    from fusion.workflows.event_view import explain_event, render_event
 
     cfg = load(config)
     st = open_store(cfg, store)
@@ -88,7 +88,7 @@ def diff_command(
 
     Writes nothing.
     """
-    from fusion.dry_run import dry_run
+    from fusion.workflows.dry_run import dry_run
 
     cfg = load(config)
     st = open_store(cfg, store)

@@ -24,7 +24,7 @@ from fusion.cli.common import (
 )
 
 if TYPE_CHECKING:
-    from config.model import MagfuseConfig
+    from fusion.settings import MagfuseConfig
     from stations.ingest import IngestOutcome
     from stations.store import StationMagnitudeStore, StoreSummary
 

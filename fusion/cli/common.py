@@ -11,8 +11,8 @@ import typer
 from fusion.advisory import ADVISORY
 
 if TYPE_CHECKING:
-    from config.model import MagfuseConfig
-    from fusion.model_registry import ModelRegistry
+    from fusion.settings import MagfuseConfig
+    from fusion.versions.model_registry import ModelRegistry
     from stations.formulas import ComputeOptions
     from stations.metadata import StationMetadata
     from stations.store import StationMagnitudeStore
@@ -69,7 +69,7 @@ DefaultNetworkOption = Annotated[
 
 def load(config: Path | None) -> MagfuseConfig:
     """Load and validate the configuration once, at the command boundary."""
-    from config import load_config
+    from fusion.settings import load_config
 
     return load_config(config)
 
@@ -125,7 +125,7 @@ def open_store(
 
 def open_registry(store: StationMagnitudeStore) -> ModelRegistry:
     """The model registry of a store, writing under the store's lock."""
-    from fusion.model_registry import ModelRegistry
+    from fusion.versions.model_registry import ModelRegistry
 
     return ModelRegistry(store.root, lock=store.write_lock)
 

@@ -32,7 +32,7 @@ Examples
 --------
 >>> import tempfile
 >>> from pathlib import Path
->>> from fusion.fused_store import FusedStore
+>>> from fusion.versions.fused_store import FusedStore
 >>> root = Path(tempfile.mkdtemp())
 >>> report = export_magnitudes(FusedStore(root), "ML", root / "ml.csv")
 >>> (report.rows, Path(report.readme).name)

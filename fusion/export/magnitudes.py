@@ -96,11 +96,11 @@ import pyarrow as pa
 from fusion.export.formats import ColumnSpec, ExportFormat, ExportReport, check_format, schema_of
 from fusion.export.quakeml import write_quakeml
 from fusion.export.tabular import export_table
-from fusion.fused_store import frame_to_table
+from fusion.versions.fused_store import frame_to_table
 from stations.errors import SchemaError
 
 if TYPE_CHECKING:
-    from fusion.fused_store import FusedStore
+    from fusion.versions.fused_store import FusedStore
 
 __all__ = [
     "MAGNITUDE_COLUMNS",
@@ -249,8 +249,8 @@ def magnitude_table(
     Parameters
     ----------
     events : pandas.DataFrame
-        A :meth:`FusedStore.current <fusion.fused_store.FusedStore.current>` frame, or the
-        ``events`` of a :class:`~fusion.network_magnitude.FusedMagnitudes` not stored yet.
+        A :meth:`FusedStore.current <fusion.versions.fused_store.FusedStore.current>` frame, or the
+        ``events`` of a :class:`~fusion.network.network_magnitude.FusedMagnitudes` not stored yet.
     model_version, evaluation_status : str, optional
         Fill these columns when ``events`` lacks them (unstored results); ``run_id`` and
         ``fused_at`` are then empty.

@@ -1,9 +1,10 @@
 """A model version's learned tables (stations, pairs, epochs) as CSV or Parquet.
 
 The tables are those stored with a model version (:meth:`ModelRegistry.load_table
-<fusion.model_registry.ModelRegistry.load_table>`): ``stations``
-(:data:`fusion.station_model.STATION_TABLE_COLUMNS`), ``pairs``
-(:data:`fusion.pair_tests.TABLE_COLUMNS`) and ``epochs`` (:data:`fusion.epochs.STEP_COLUMNS`).
+<fusion.versions.model_registry.ModelRegistry.load_table>`): ``stations``
+(:data:`fusion.model.station_model.STATION_TABLE_COLUMNS`), ``pairs``
+(:data:`fusion.model.pair_tests.TABLE_COLUMNS`) and ``epochs``
+(:data:`fusion.model.epochs.STEP_COLUMNS`).
 Their known columns have a declared type, unit and description below
 (:data:`MODEL_TABLE_COLUMNS`); a column the learner adds later is exported with the type of
 its values (bool, integer, float, time or text; anything else is an error naming it) and
@@ -26,11 +27,11 @@ import pyarrow as pa
 
 from fusion.export.formats import ColumnSpec, ExportFormat, ExportReport, check_format
 from fusion.export.tabular import export_table
-from fusion.fused_store import frame_to_table
+from fusion.versions.fused_store import frame_to_table
 from stations.errors import SchemaError
 
 if TYPE_CHECKING:
-    from fusion.model_registry import ModelRegistry, ModelVersion
+    from fusion.versions.model_registry import ModelRegistry, ModelVersion
 
 __all__ = ["MODEL_TABLE_COLUMNS", "export_model_table", "model_table"]
 

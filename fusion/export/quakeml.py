@@ -2,7 +2,7 @@
 
 One ``Event`` per event with a finite fused magnitude; events without one (flag
 ``no-detection``) are left out and counted. Field mapping (QuakeML BED 1.2 names; magfuse
-columns of :class:`~fusion.fused_store.FusedStore` frames):
+columns of :class:`~fusion.versions.fused_store.FusedStore` frames):
 
 =============================================== =========================== ==================
 QuakeML element                                 magfuse column              unit
@@ -341,11 +341,12 @@ def build_catalog(
     Parameters
     ----------
     events : pandas.DataFrame
-        Current rows (:meth:`FusedStore.current <fusion.fused_store.FusedStore.current>`),
+        Current rows (:meth:`FusedStore.current <fusion.versions.fused_store.FusedStore.current>`),
         one per event.
     contributions : pandas.DataFrame
         Their contributions (:meth:`FusedStore.current_contributions
-        <fusion.fused_store.FusedStore.current_contributions>`); an optional ``channel`` column
+        <fusion.versions.fused_store.FusedStore.current_contributions>`); an optional ``channel``
+        column
         fills the waveform ids' channel codes.
     readings : pandas.DataFrame, optional
         Station-store rows giving event locations and channels (:func:`event_locations`).

@@ -4,8 +4,8 @@
   Arrow schema) and one self-contained HTML file for a station model and the events of a
   window; :class:`ReportInputs` holds its input tables (columns:
   :mod:`fusion.report.inputs`), :func:`report_inputs_from_parameters` builds them from
-  :class:`~fusion.parameters.StationParameters` and
-  :class:`~fusion.network_magnitude.FusedMagnitudes`.
+  :class:`~fusion.model.parameters.StationParameters` and
+  :class:`~fusion.network.network_magnitude.FusedMagnitudes`.
 - :func:`station_reliability_table` computes the table alone (no files, no figures).
 - :func:`render_event_figure` draws one event's station magnitudes, weights and network
   magnitude as PNG or as a self-contained HTML page; :func:`write_event_figure` writes it for

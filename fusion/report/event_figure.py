@@ -70,7 +70,7 @@ class _Contribution(Protocol):
 
 class _Estimate(Protocol):
     """What :func:`event_picture` reads: the fields of
-    :class:`~fusion.network_magnitude.NetworkEstimate`."""
+    :class:`~fusion.network.network_magnitude.NetworkEstimate`."""
 
     magnitude: float
     uncertainty: float
@@ -259,7 +259,7 @@ def event_picture(
     epicenter: tuple[float, float] | None = None,
     outlier_weight: float = 0.3,
 ) -> EventPicture:
-    """An :class:`EventPicture` from a :class:`~fusion.network_magnitude.NetworkEstimate`.
+    """An :class:`EventPicture` from a :class:`~fusion.network.network_magnitude.NetworkEstimate`.
 
     Parameters
     ----------
@@ -574,7 +574,7 @@ def render_event_figure(
     Parameters
     ----------
     estimate : NetworkEstimate
-        From :meth:`fusion.network_magnitude.FusedMagnitudes.event` (or an object with the
+        From :meth:`fusion.network.network_magnitude.FusedMagnitudes.event` (or an object with the
         same fields).
     fmt : {'png', 'html'}, default='png'
         Output form; the HTML page embeds the PNG and adds a table of the station rows.
@@ -632,10 +632,11 @@ def write_event_figure(
     Parameters
     ----------
     explanation : EventExplanation or NetworkEstimate
-        :class:`fusion.event_view.EventExplanation` (its ``estimate``; epicentral distances
+        :class:`fusion.workflows.event_view.EventExplanation` (its ``estimate``; epicentral
+        distances
         and the epicentre come from its ``readings``, columns ``distance_km``,
         ``event_longitude``, ``event_latitude`` of the store schema; its ``model_version`` is
-        named on the page), or a bare :class:`~fusion.network_magnitude.NetworkEstimate`.
+        named on the page), or a bare :class:`~fusion.network.network_magnitude.NetworkEstimate`.
     path : Path
         File to write (replaced).
     fmt : {'png', 'html'}, default='png'

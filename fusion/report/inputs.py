@@ -3,8 +3,8 @@
 The report is a pure function of :class:`ReportInputs`: it never opens the store or refits a
 model, so it can be tested alone and fed from any source (a stored model version, a fresh fit, a
 simulation). :func:`report_inputs_from_parameters` builds the inputs from the objects the rest of
-magfuse produces (:class:`~fusion.parameters.StationParameters` and
-:class:`~fusion.network_magnitude.FusedMagnitudes`).
+magfuse produces (:class:`~fusion.model.parameters.StationParameters` and
+:class:`~fusion.network.network_magnitude.FusedMagnitudes`).
 
 Columns (magnitudes in magnitude units, times UTC; *optional* columns may be absent)
 ------------------------------------------------------------------------------------
@@ -29,20 +29,20 @@ uncalibrated     no       unit in a component without anchor (DESIGN §3)
 partner          no       unit or station id of a flagged correlated partner, else empty
 ================ ======== ==========================================================================
 
-``pairs`` (tested pairs, :attr:`fusion.pair_tests.PairDetection.table`): ``station_k``,
+``pairs`` (tested pairs, :attr:`fusion.model.pair_tests.PairDetection.table`): ``station_k``,
 ``station_l`` (station or unit ids), ``n_shared``, ``rho_hat``, ``rho_ci_low``, ``rho_ci_high``,
 ``flagged``; optional ``c_hat``, ``statistic``, ``p_value``, ``q_value``.
 
-``epochs`` (drift alarms, :attr:`fusion.epochs.BiasStepResult.table`): ``station_id``,
+``epochs`` (drift alarms, :attr:`fusion.model.epochs.BiasStepResult.table`): ``station_id``,
 ``change_time``, ``alarm_time``, ``direction`` (+1 up, −1 down); optional ``n_before``,
 ``n_after``, ``peak``.
 
-``events`` (:attr:`fusion.network_magnitude.FusedMagnitudes.events`): ``event_id`` (unique),
+``events`` (:attr:`fusion.network.network_magnitude.FusedMagnitudes.events`): ``event_id`` (unique),
 ``origin_time``, ``magnitude``, ``se``, ``n_stations``, ``plain_mean``; optional
 ``magnitude_type``, ``ci_low``, ``ci_high``, ``confidence_level``, ``n_eff``, ``median``,
 ``minus_plain_mean``, ``birge_ratio``, ``flags``, ``max_influence_station``.
 
-``contributions`` (:attr:`fusion.network_magnitude.FusedMagnitudes.contributions`):
+``contributions`` (:attr:`fusion.network.network_magnitude.FusedMagnitudes.contributions`):
 ``event_id``, ``station_id``, ``unit_id`` (empty for a station the model does not know),
 ``corrected_magnitude``, ``weight``, ``residual``; optional ``magnitude``, ``correction``,
 ``detected``, ``robust_weight``, ``influence``, ``z``, ``flags``, ``threshold``,
@@ -72,8 +72,8 @@ from numpy.typing import NDArray
 from stations.errors import DomainError, SchemaError
 
 if TYPE_CHECKING:
-    from fusion.network_magnitude import FusedMagnitudes
-    from fusion.parameters import StationParameters
+    from fusion.model.parameters import StationParameters
+    from fusion.network.network_magnitude import FusedMagnitudes
 
 __all__ = [
     "CONTRIBUTION_COLUMNS",

@@ -22,9 +22,10 @@ from typer.testing import CliRunner, Result
 import sample_events
 from fusion.advisory import ADVISORY
 from fusion.cli.app import app
+from tests.datasets import DATA_DIR
 
 #: The open-data folder next to the repository (``../shared/data``); read in place, never copied.
-SHARED_DATA = Path(__file__).resolve().parents[3] / "shared" / "data"
+SHARED_DATA = DATA_DIR
 
 #: The advisory caution as the commands print it on stderr.
 ADVISORY_LINE = ADVISORY + "\n"
@@ -34,7 +35,8 @@ ADVISORY_LINE = ADVISORY + "\n"
 #: year. Every other key keeps its shipped value.
 FAST_CONFIG = "[pairs]\nglobal_test_replicates = 20\n"
 
-#: Version ids printed by ``magfuse learn`` (fusion.model_registry: TYPE-YYYYMMDDTHHMMSSZ-hash).
+#: Version ids printed by ``magfuse learn``
+#: (fusion.versions.model_registry: TYPE-YYYYMMDDTHHMMSSZ-hash).
 VERSION_RE = r"ML-\d{8}T\d{6}Z-[0-9a-f]{8}"
 
 _runner = CliRunner()

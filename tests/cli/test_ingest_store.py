@@ -16,16 +16,11 @@ from fusion.cli.app import app
 from stations.readers import read_records
 from stations.readers.csv import template_path
 from stations.store import StationMagnitudeStore
+from tests.datasets import YELLOWSTONE_CSV
 
 runner = CliRunner()
 BATCH = r"\d{8}T\d{12}Z-[0-9a-f]{6}"
-YELLOWSTONE = (
-    Path(__file__).resolve().parents[3]
-    / "shared"
-    / "data"
-    / "yellowstone-uuss"
-    / "station_ml_geobalanced.csv"
-)
+YELLOWSTONE = YELLOWSTONE_CSV
 
 
 def _malformed(tmp_path: Path) -> tuple[Path, str]:

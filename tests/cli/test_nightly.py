@@ -21,8 +21,8 @@ import pandas as pd
 import pytest
 from typer.testing import Result
 
-from fusion.fused_store import FusedStore
-from fusion.model_registry import ModelRegistry
+from fusion.versions.fused_store import FusedStore
+from fusion.versions.model_registry import ModelRegistry
 from stations.readers import read_records
 from stations.store import StationMagnitudeStore
 from tests.cli.conftest import (

@@ -31,8 +31,8 @@ from fusion.advisory import ADVISORY
 from fusion.cli.app import app
 from fusion.export import MAGNITUDE_COLUMNS
 from fusion.export.quakeml import event_id_from_resource_id
-from fusion.fused_store import FusedStore
-from fusion.model_registry import ModelRegistry
+from fusion.versions.fused_store import FusedStore
+from fusion.versions.model_registry import ModelRegistry
 from stations.store import StationMagnitudeStore
 from tests.cli.conftest import (
     ADVISORY_LINE,
@@ -360,8 +360,8 @@ def test_help_shows_the_configuration_sections_it_names() -> None:
 
 # -- dry run ------------------------------------------------------------------------------------
 
-#: Keys of ``magfuse diff --json`` documented in fusion/dry_run.py (DryRunReport attributes)
-#: and the two policy keys the command adds (fusion/cli/commands_review.py).
+#: Keys of ``magfuse diff --json`` documented in fusion/workflows/dry_run.py (DryRunReport
+#: attributes) and the two policy keys the command adds (fusion/cli/commands_review.py).
 DIFF_KEYS = {
     "magnitude_type",
     "active_version",

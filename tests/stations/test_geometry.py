@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 import pytest
@@ -22,15 +20,10 @@ from stations.geometry import (
     hypocentral_distance_km,
     kilometres_to_degrees,
 )
+from tests.datasets import YELLOWSTONE_CSV
 from tests.reference import formulas as ref
 
-YELLOWSTONE = (
-    Path(__file__).resolve().parents[3]
-    / "shared"
-    / "data"
-    / "yellowstone-uuss"
-    / "station_ml_geobalanced.csv"
-)
+YELLOWSTONE = YELLOWSTONE_CSV
 
 
 def _random_pairs(n: int, seed: int) -> tuple[np.ndarray, ...]:

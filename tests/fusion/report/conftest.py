@@ -1,6 +1,6 @@
 """Shared inputs of the report tests: a small simulated network with planted problems.
 
-Network: ``fusion.simulation.simulate_network`` (DESIGN §13 generator), 24 stations, 1,500
+Network: ``fusion.model.simulation.simulate_network`` (DESIGN §13 generator), 24 stations, 1,500
 events, three correlated pairs (stations 0-1, 2-3, 4-5 with ρ 0.4, 0.5, 0.6), a +0.4 bias step
 on station 10 at mid-year, 1 % outlier cells. Planted on top of the generator's magnitudes:
 
@@ -9,31 +9,32 @@ on station 10 at mid-year, 1 % outlier cells. Planted on top of the generator's 
 
 The model is the truth (true biases, σ, pair covariances), so the only misfits are the planted
 ones. Pair tests and drift alarms come from the project's own detectors
-(:func:`fusion.pair_tests.detect_correlated_pairs`, :func:`fusion.epochs.detect_bias_steps`).
+(:func:`fusion.model.pair_tests.detect_correlated_pairs`,
+:func:`fusion.model.epochs.detect_bias_steps`).
 """
 
 from __future__ import annotations
 
 import dataclasses
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
 
-from fusion.epochs import detect_bias_steps
-from fusion.network_magnitude import FusedMagnitudes, fuse_events
-from fusion.pair_tests import detect_correlated_pairs
-from fusion.parameters import StationParameters
+from fusion.model.epochs import detect_bias_steps
+from fusion.model.pair_tests import detect_correlated_pairs
+from fusion.model.parameters import StationParameters
+from fusion.model.simulation import SimulatedNetwork, SimulationConfig, simulate_network
+from fusion.network.network_magnitude import FusedMagnitudes, fuse_events
 from fusion.report import ReportInputs, report_inputs_from_parameters
-from fusion.simulation import SimulatedNetwork, SimulationConfig, simulate_network
+from tests.datasets import YELLOWSTONE
 
 NAT = np.datetime64("NaT", "us")
 DIST_TREND_STATION = 12
 SATURATION_STATION = 13
 STEP_STATION = 10
-DATA = Path(__file__).resolve().parents[4] / "shared" / "data" / "yellowstone-uuss"
+DATA = YELLOWSTONE
 
 
 def true_parameters(net: SimulatedNetwork) -> StationParameters:

@@ -11,10 +11,10 @@ from matplotlib.colors import to_rgb
 from PIL import Image
 
 from fusion.advisory import ADVISORY
-from fusion.gls_blocks import PairCovariance
-from fusion.network_magnitude import NetworkEstimate, fuse_events
+from fusion.model.parameters import StationParameters
+from fusion.network.gls_blocks import PairCovariance
+from fusion.network.network_magnitude import NetworkEstimate, fuse_events
 from fusion.observations import ObservationSet
-from fusion.parameters import StationParameters
 from fusion.report import render_event_figure
 from fusion.report.drawing import new_figure
 from fusion.report.event_figure import MAX_AREA, draw_event, event_picture
@@ -167,9 +167,9 @@ def test_palette_is_okabe_ito() -> None:
 
 def test_write_event_figure_from_an_explanation(e1: NetworkEstimate, tmp_path) -> None:  # type: ignore[no-untyped-def]
     """``magfuse event --png/--html`` path: distances and epicentre come from the store
-    readings of :class:`fusion.event_view.EventExplanation`, the version is named."""
-    from fusion.event_view import EventExplanation
+    readings of :class:`fusion.workflows.event_view.EventExplanation`, the version is named."""
     from fusion.report import write_event_figure
+    from fusion.workflows.event_view import EventExplanation
 
     readings = pd.DataFrame(
         {

@@ -2,26 +2,26 @@
 
 With the network's own station corrections as the model (b̂ = −Corr, one unit per correction
 epoch) and equal σ, the fused magnitude of an event is the plain mean of the network's
-corrected station ML (checked in tests/fusion/test_network_magnitude.py). The report's
+corrected station ML (checked in tests/fusion/network/test_network_magnitude.py). The report's
 per-unit residual figures must then equal pandas group-bys of SML minus that mean.
 """
 
 from __future__ import annotations
 
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
 
-from fusion.gls_blocks import PairCovariance
-from fusion.network_magnitude import fuse_events
+from fusion.model.parameters import StationParameters
+from fusion.network.gls_blocks import PairCovariance
+from fusion.network.network_magnitude import fuse_events
 from fusion.observations import ObservationSet
-from fusion.parameters import StationParameters
 from fusion.report import report_inputs_from_parameters, write_station_report
+from tests.datasets import YELLOWSTONE
 
-DATA = Path(__file__).resolve().parents[4] / "shared" / "data" / "yellowstone-uuss"
+DATA = YELLOWSTONE
 NAT = np.datetime64("NaT", "us")
 
 pytestmark = pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")

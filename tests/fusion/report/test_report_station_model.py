@@ -1,4 +1,4 @@
-"""The report fed straight from a fitted :class:`fusion.station_model.StationModel`.
+"""The report fed straight from a fitted :class:`fusion.model.station_model.StationModel`.
 
 Contract with the learning side: ``station_table_``, ``pair_table_`` and ``epoch_table_`` are
 accepted as they come (including object-dtype columns of an assembled table), and the planted
@@ -12,10 +12,10 @@ import warnings
 import pandas as pd
 import pytest
 
-from fusion.network_magnitude import fuse_events
+from fusion.model.station_model import STATION_TABLE_COLUMNS, StationModel
+from fusion.network.network_magnitude import fuse_events
 from fusion.report import ReportInputs, write_station_report
 from fusion.report.inputs import STATION_COLUMNS
-from fusion.station_model import STATION_TABLE_COLUMNS, StationModel
 
 
 def test_station_table_columns_cover_the_report_inputs() -> None:
@@ -26,7 +26,7 @@ def test_report_from_a_fitted_model(planted, tmp_path) -> None:  # type: ignore[
     obs = planted.net.observations
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        # h = 8 (few false alarms, fusion.epochs); no bootstrap replicates: speed.
+        # h = 8 (few false alarms, fusion.model.epochs); no bootstrap replicates: speed.
         model = StationModel(
             anchor="median", global_test_replicates=0, cusum_h=8.0, random_state=0
         ).fit(obs)
@@ -63,11 +63,11 @@ def test_report_from_a_fitted_model(planted, tmp_path) -> None:  # type: ignore[
 
 
 def test_report_from_tables_stored_with_a_model_version(planted, tmp_path) -> None:  # type: ignore[no-untyped-def]
-    """Tables as ``magfuse learn`` stores them (fusion.learning turns object columns into
+    """Tables as ``magfuse learn`` stores them (fusion.workflows.learning turns object columns into
     strings for Parquet, so flags may come back as text) and reads them back through
-    :meth:`fusion.model_registry.ModelRegistry.load_table`."""
-    from fusion.learning import _parquet_safe
-    from fusion.model_registry import ModelRegistry
+    :meth:`fusion.versions.model_registry.ModelRegistry.load_table`."""
+    from fusion.versions.model_registry import ModelRegistry
+    from fusion.workflows.learning import _parquet_safe
 
     obs = planted.net.observations
     with warnings.catch_warnings():
@@ -88,7 +88,8 @@ def test_report_from_tables_stored_with_a_model_version(planted, tmp_path) -> No
         },
     )
     loaded = {name: reg.load_table(version, name) for name in ("stations", "pairs", "epochs")}
-    # Stored tables keep their bool type (fusion.learning._parquet_safe infers object columns).
+    # Stored tables keep their bool type
+    # (fusion.workflows.learning._parquet_safe infers object columns).
     assert loaded["pairs"]["flagged"].dtype == bool
     inputs = ReportInputs(
         model_meta=dict(version.meta),

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 import pytest
@@ -11,8 +9,9 @@ import statsmodels.api as sm
 from scipy import stats
 
 from fusion.report.trends import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
+from tests.datasets import YELLOWSTONE
 
-DATA = Path(__file__).resolve().parents[4] / "shared" / "data" / "yellowstone-uuss"
+DATA = YELLOWSTONE
 
 
 def _statsmodels_wls(x: np.ndarray, y: np.ndarray, w: np.ndarray) -> tuple[float, float, float]:

@@ -7,8 +7,6 @@ Provenance and the measured bounds are in tests/reference/formulas.py.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 import pandas as pd
 import pytest
@@ -16,15 +14,10 @@ import pytest
 from stations.formulas import ComputeOptions, compute_station_magnitudes, ml
 from stations.metadata import StationMetadata
 from stations.schema import INPUT_COLUMNS
+from tests.datasets import YELLOWSTONE_CSV
 from tests.reference import formulas as ref
 
-DATA = (
-    Path(__file__).resolve().parents[4]
-    / "shared"
-    / "data"
-    / "yellowstone-uuss"
-    / "station_ml_geobalanced.csv"
-)
+DATA = YELLOWSTONE_CSV
 
 
 @pytest.fixture(scope="module")

@@ -20,14 +20,9 @@ import pytest
 from stations.errors import MalformedFileError
 from stations.readers import ReadResult, read_records
 from stations.readers.yellowstone import HEADER, is_yellowstone, read_yellowstone
+from tests.datasets import YELLOWSTONE_CSV
 
-DATA = (
-    Path(__file__).resolve().parents[4]
-    / "shared"
-    / "data"
-    / "yellowstone-uuss"
-    / "station_ml_geobalanced.csv"
-)
+DATA = YELLOWSTONE_CSV
 
 
 @pytest.fixture(scope="module")

@@ -8,22 +8,16 @@ The store takes the frames, not the readers, so its tests build them here: colum
 from __future__ import annotations
 
 import json
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from stations.schema import INPUT_COLUMNS
+from tests.datasets import YELLOWSTONE_CSV
 
 #: The real open data set of the project (Holt, Pechmann & Koper 2022, BSSA 112(2)), read in
 #: place from the folder next to the repository.
-YELLOWSTONE = (
-    Path(__file__).resolve().parents[4]
-    / "shared"
-    / "data"
-    / "yellowstone-uuss"
-    / "station_ml_geobalanced.csv"
-)
+YELLOWSTONE = YELLOWSTONE_CSV
 
 
 def _str(values: object) -> pd.Series:
