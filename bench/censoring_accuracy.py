@@ -1,9 +1,9 @@
 """Accuracy of the station fit and the network magnitudes with non-detections (issue 7).
 
-The DESIGN §13 ``censor`` simulation (K = 40 stations, N = 4000 events a year, G–R magnitudes
-above 1.0, three correlated pairs, 1 % outlier cells; a station reports only when its station
-magnitude clears t_ij = t0_i + 1.2 log10(Δ/10 km), and its non-detections are stored with t_ij)
-is run for several seeds. Side by side, on the same events (every event with a detection):
+The docs/simulation.md ``censor`` simulation (K = 40 stations, N = 4000 events a year, G–R
+magnitudes above 1.0, three correlated pairs, 1 % outlier cells; a station reports only when its
+station magnitude clears t_ij = t0_i + 1.2 log10(Δ/10 km), and its non-detections are stored with
+t_ij) is run for several seeds. Side by side, on the same events (every event with a detection):
 
 - ``oracle Tobit``: the censored network estimate
   (:func:`fusion.network.network_magnitude.fuse_events`,
@@ -19,21 +19,21 @@ is run for several seeds. Side by side, on the same events (every event with a d
   outlier model), censored network estimate — the issue-7 method;
 - ``joint t(4)`` and ``joint none``: the joint fit with the Student-t or no outlier model;
 - ``thr +0.1`` / ``thr −0.1`` / ``thr N(0,.15²)``: every stored threshold wrong by that much,
-  in the fit and in the network estimate (DESIGN §11.2 sensitivity);
+  in the fit and in the network estimate (docs/censoring.md §10 sensitivity);
 - ``estimated thr``: thresholds hidden, estimated from probit detection curves
   (:func:`fusion.model.censored_fit.refit_with_nondetections`, 3 rounds);
-- ``safe cells``: no non-detection stored at all; the DESIGN §11.2 fallback (fit on safe cells,
-  detections-only network estimate).
+- ``safe cells``: no non-detection stored at all; the docs/censoring.md §8 fallback (fit on safe
+  cells, detections-only network estimate).
 
 Metrics, pooled over seeds: event bias in magnitude bins 1–1.5, 1.5–2, 2–2.5, > 2.5 of the
 true M (bins with >= 100 events per seed on average), overall bias and RMSE (fitted methods
 put on the true level by the mean true bias, the level of the sum-zero anchor), 68 % coverage
 of the SE, station bias RMSE after anchor alignment and median σ̂/σ, seconds per fit.
 
-Targets (DESIGN §13; [sim] values of DESIGN §11.2 beside them): |bias| <= 0.03 in every bin
-with >= 100 events for ``joint``; ``det-only`` lowest bin > +0.15 (Ringdal 1976: detected-only
-averages are biased high at small M); ``joint`` RMSE below ``det-only oracle``; b RMSE and
-median σ̂/σ near 0.014 / 0.992; threshold errors ±0.1 within +0.066 / −0.051.
+Targets (docs/simulation.md; [sim] values of docs/censoring.md §4 beside them): |bias| <= 0.03 in
+every bin with >= 100 events for ``joint``; ``det-only`` lowest bin > +0.15 (Ringdal 1976:
+detected-only averages are biased high at small M); ``joint`` RMSE below ``det-only oracle``; b RMSE
+and median σ̂/σ near 0.014 / 0.992; threshold errors ±0.1 within +0.066 / −0.051.
 
 Usage::
 
@@ -66,7 +66,9 @@ from fusion.network.network_magnitude import fuse_events
 from fusion.observations import ObservationSet
 
 BINS = ((1.0, 1.5), (1.5, 2.0), (2.0, 2.5), (2.5, np.inf))
-DESIGN_SIM = {  # DESIGN §11.2 [sim] rows (b RMSE, median σ̂/σ, event bias, RMSE, coverage)
+# [sim] rows of the planning simulation, docs/censoring.md §10
+# (b RMSE, median σ̂/σ, event bias, RMSE, coverage)
+PLANNING_SIM = {
     "oracle Tobit": "+0.012 / 0.0841",
     "det-only oracle": "+0.161 / 0.2266",
     "det-only REML": "+0.196 / 0.2386",
@@ -239,7 +241,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--seeds", type=int, default=5, help="number of seeds")
     args = parser.parse_args(argv)
     seeds = list(range(1, 1 + args.seeds))
-    print(f"seeds {seeds}; DESIGN §13 censor mode, K = 40, N = 4000 per run, 1 % outlier cells")
+    print(f"seeds {seeds}; censor mode (docs/simulation.md), K = 40, N = 4000, 1 % outlier cells")
     runs = []
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -261,7 +263,7 @@ def main(argv: list[str] | None = None) -> None:
         print(f"{label}: {truth.shape[0]} events; per bin {n_bin} (pooled over seeds)")
         print(
             f"{'method':<15} {'1-1.5':>7} {'1.5-2':>7} {'2-2.5':>7} {'>2.5':>7} {'bias':>7} "
-            f"{'RMSE':>7} {'cov68':>6} {'b RMSE':>7} {'σ̂/σ':>6} {'s/fit':>6}  DESIGN [sim]"
+            f"{'RMSE':>7} {'cov68':>6} {'b RMSE':>7} {'σ̂/σ':>6} {'s/fit':>6}  planning [sim]"
         )
         for k in names:
             err = np.concatenate(
@@ -289,7 +291,7 @@ def main(argv: list[str] | None = None) -> None:
                 f"{k:<15} "
                 + " ".join(f"{v:+7.3f}" for v in bins)
                 + f" {float(np.mean(err)):+7.3f} {rmse:7.4f} {cov:6.3f} {b_txt:>7} {s_txt:>6}"
-                f" {s_sec:>6}  {DESIGN_SIM.get(k, '') if min_det == 2 else ''}"
+                f" {s_sec:>6}  {PLANNING_SIM.get(k, '') if min_det == 2 else ''}"
             )
     thr_err = np.concatenate([r["estimated thr"]["thr_err"] for r in runs])
     print()

@@ -1,13 +1,14 @@
-"""Accuracy of the station model on the DESIGN §13 simulator, with the issue-3 targets.
+"""Accuracy of the station model on the docs/simulation.md simulator, with the issue-3 targets.
 
 For several seeds and the missingness modes ``mar`` and ``select_m`` (K = 40 stations, N = 4000
 events, three co-located pairs with ρ = 0.4, 0.5, 0.6, 1 % outlier cells; ``mar-clean`` without
 outliers, where the oracle is the true efficiency bound) the full
 :class:`fusion.model.station_model.StationModel` is fitted (pairs on, epochs off, no forgetting).
-Event magnitudes are the DESIGN §8.1 GLS estimate with s_i² = σ̃_i²/ω_ij + Var(b̂_i) and the
-flagged pair covariances (:func:`fusion.network.event_gls.event_gls`), SE_j = sqrt(V_j).
+Event magnitudes are the docs/network-magnitude.md §2 GLS estimate with s_i² = σ̃_i²/ω_ij +
+Var(b̂_i) and the flagged pair covariances (:func:`fusion.network.event_gls.event_gls`), SE_j =
+sqrt(V_j).
 
-Metrics (DESIGN §13), pooled over seeds:
+Metrics (docs/simulation.md), pooled over seeds:
 
 - event RMSE for events whose stations all have >= 100 readings, and its ratio to the oracle
   (GLS with the true biases and covariance, :func:`fusion.model.simulation.oracle_estimate`), to the
@@ -23,8 +24,8 @@ Metrics (DESIGN §13), pooled over seeds:
   between the step and the alarm (CUSUM k = 0.5, h = 5 and h = 8), and false alarms per
   1,000 readings on the other stations.
 
-An ablation line runs :func:`fusion.model.reml_em.fit_reml_em` with the literal DESIGN §5 σ-step
-(``scale_consistency=False``) next to the default.
+An ablation line runs :func:`fusion.model.reml_em.fit_reml_em` with the literal docs/estimator.md §3
+σ-step (``scale_consistency=False``) next to the default.
 
 Usage::
 
@@ -64,7 +65,7 @@ TARGETS = {
 
 
 def _event_estimates(net: SimulatedNetwork, model: StationModel) -> tuple[Any, Any]:
-    """DESIGN §8.1 GLS magnitudes and variances with the fitted parameters."""
+    """docs/network-magnitude.md §2 GLS magnitudes and variances with the fitted parameters."""
     obs = net.observations
     fit = model.fit_
     rows = np.flatnonzero(np.isfinite(fit.row_weight))
@@ -175,7 +176,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--seeds", type=int, default=5, help="number of seeds per mode")
     args = parser.parse_args(argv)
     seeds = list(range(100, 100 + args.seeds))
-    print(f"seeds {seeds}; K = 40, N = 4000 per run (DESIGN §13)")
+    print(f"seeds {seeds}; K = 40, N = 4000 per run (docs/simulation.md)")
     head = (
         f"{'mode':>9} {'events':>7} {'RMSE':>7} {'/oracle':>8} {'/mean':>7} {'/median':>8} "
         f"{'b RMSE':>7} {'med σ̂/σ':>8} {'cov68':>6} {'TPR':>5} {'FDR':>5} {'σ̂/σ lit.':>9} "
@@ -215,7 +216,7 @@ def main(argv: list[str] | None = None) -> None:
         f"{TARGETS['bias_rmse']:>7} {TARGETS['sigma_ratio']:>8} {TARGETS['coverage68']:>6} "
         f"{TARGETS['pair_tpr']:>5} {TARGETS['pair_fdr']:>5}"
     )
-    print("(σ̂/σ lit.: the literal DESIGN §5 σ-step Σγω(r² + V)/Σγ, without κ_ν; not the default)")
+    print("(σ̂/σ lit.: the textbook σ-step Σγω(r² + V)/Σγ without κ_ν, docs/estimator.md §7.1)")
     print("(mar-clean: no outlier cells, so the oracle, which does not down-weight outliers, is")
     print(" the true efficiency bound; with 1 % outliers the robust fit can beat it)")
     print()

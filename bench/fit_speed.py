@@ -1,9 +1,9 @@
-"""Speed and peak memory of the station-model fit (DESIGN §5.1) at 1 M and 10 M readings.
+"""Speed and peak memory of the station-model fit (docs/estimator.md §4) at 1 M and 10 M readings.
 
 A synthetic network of K stations on a square grid (unit spacing) records N events; each event
 is seen by the stations inside a w×w window around its epicentre (w uniform in 2..7, so ~23
 stations before a 90 % availability), which gives the spatially local co-observation graph of
-a real network (the hard case for iterative solvers). Magnitudes follow DESIGN §13:
+a real network (the hard case for iterative solvers). Magnitudes follow docs/simulation.md:
 M = 1 + Exp(β = ln 10), b ~ N(0, 0.2²), σ = exp(N(log 0.22, 0.4²)), 1 % outlier cells N(0, 1).
 Generation is vectorized (no loop over events).
 

@@ -3,8 +3,8 @@
 Simulates the nightly job of the issue: every night it marks final the events older than the
 revision horizon (:meth:`FusedStore.finalize`) and re-fuses the events of the horizon
 (:meth:`FusedStore.write_run`), so each night adds two runs. The fused results come from one
-:func:`fusion.network.network_magnitude.fuse_events` call on a seeded synthetic network (DESIGN
-§13),
+:func:`fusion.network.network_magnitude.fuse_events` call on a seeded synthetic network
+(docs/simulation.md),
 sliced per night; the store cost does not depend on the values.
 
 Two stores get the same nights side by side: one never compacts (``compact_after=None``), one

@@ -4,11 +4,11 @@ Every numerical routine in :mod:`fusion` works on an :class:`ObservationSet`: fl
 length ``nnz`` (one entry per station-event cell that has a row), sorted by event, with integer
 codes into the event table (length ``N``) and the station table (length ``K``). Per-event sums
 are ``np.bincount(obs.event, weights=x, minlength=obs.n_events)`` and broadcast back with
-``[obs.event]``; per-station sums use ``obs.station`` likewise (DESIGN §5.1). No routine loops
-over events or rows in Python.
+``[obs.event]``; per-station sums use ``obs.station`` likewise (docs/estimator.md §4). No routine
+loops over events or rows in Python.
 
-Cell states (DESIGN §2): ``detected`` rows carry a magnitude (``clipped`` ones a lower bound);
-non-detections have ``magnitude = NaN`` and a ``threshold`` if the noise level is known;
+Cell states (docs/model.md §2): ``detected`` rows carry a magnitude (``clipped`` ones a lower
+bound); non-detections have ``magnitude = NaN`` and a ``threshold`` if the noise level is known;
 unavailable cells have no row.
 """
 

@@ -1,4 +1,6 @@
-"""The configuration model: field constraints double as the constraint table (STYLE item 3).
+"""The configuration model; its field constraints are the constraint table.
+
+See docs/conventions.md items 3 and 13.
 
 Every section is a frozen pydantic model with ``extra="forbid"``, so a misspelt key fails loudly
 at load time with the key's name. The defaults live here, in the field declarations; the
@@ -65,7 +67,7 @@ class ComputeConfig(_Section):
 
 
 class LearnConfig(_Section):
-    """Station-model fitting (DESIGN §5, §6)."""
+    """Station-model fitting (docs/estimator.md §3; docs/rolling-fit.md)."""
 
     magnitude_type: str = "ML"
     half_life_days: float = Field(120.0, gt=0.0)
@@ -83,7 +85,7 @@ class LearnConfig(_Section):
 
 
 class PairConfig(_Section):
-    """Correlated-pair detection (DESIGN §9, §10)."""
+    """Correlated-pair detection (docs/pairs.md)."""
 
     min_shared_events: int = Field(30, ge=4)
     fdr_q: float = Field(0.05, gt=0.0, lt=1.0)
@@ -93,7 +95,7 @@ class PairConfig(_Section):
 
 
 class EpochConfig(_Section):
-    """CUSUM station epochs (DESIGN §6)."""
+    """CUSUM station epochs (docs/epochs.md)."""
 
     enabled: bool = True
     cusum_k: float = Field(0.5, ge=0.0)
@@ -102,7 +104,7 @@ class EpochConfig(_Section):
 
 
 class NetworkConfig(_Section):
-    """Per-event network estimate (DESIGN §8)."""
+    """Per-event network estimate (docs/network-magnitude.md)."""
 
     confidence_level: float = Field(0.68, gt=0.0, lt=1.0)
     robust_min_stations: int = Field(3, ge=2)
@@ -111,7 +113,7 @@ class NetworkConfig(_Section):
 
 
 class CensoringConfig(_Section):
-    """Use of non-detections (DESIGN §11): network estimate and station fit."""
+    """Use of non-detections (docs/censoring.md): network estimate and station fit."""
 
     enabled: bool = True
     soft_threshold_sd: float = Field(0.0, ge=0.0)

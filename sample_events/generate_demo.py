@@ -28,7 +28,7 @@ share part of their errors (``Cov(e_kj, e_lj) = ρ σ_k σ_l``, built from a com
 with weights √ρ and √(1 − ρ)), and about 1 % of the readings get an outlier term
 ``o_ij ~ N(0, 1²)`` (a wrong phase or a glitch). The Wood-Anderson amplitude follows from the
 IASPEI standard ML formula (IASPEI standard procedures for magnitude determination, ML
-section; CHECKS.md §1):
+section; docs/check-values.md §1):
 
     ML = log10(A_nm) + 1.11 log10(R) + 0.00189 R - 2.09,   R hypocentral distance, km,
 
@@ -38,10 +38,10 @@ log10(1 + 5e-4)). The pre-event noise amplitude of a reading (the station's medi
 log-normal factor) goes through the same formula to give ``noise_threshold``. A station reports
 when it was operating (installed and not in an outage: about 92 % of the time), lies within
 250 km of the epicentre, and its rounded reading clears its rounded noise threshold; operating
-stations within 250 km that did not report give a non-detection row (DESIGN §2, §11). A reading
-whose amplitude exceeds the station's clip amplitude is stored at the clip level with
-``clipped = true`` (the magnitude is a lower bound). Events that no station reported are
-dropped.
+stations within 250 km that did not report give a non-detection row (docs/model.md §2;
+docs/censoring.md). A reading whose amplitude exceeds the station's clip amplitude is stored at the
+clip level with ``clipped = true`` (the magnitude is a lower bound). Events that no station reported
+are dropped.
 
 References
 ----------
@@ -50,7 +50,8 @@ relation).
 Utsu, T. (1961). A statistical study on the occurrence of aftershocks. Geophys. Mag. 30,
 521-605.
 IASPEI (2013). Summary of magnitude working group recommendations on standard procedures for
-determining earthquake magnitudes from digital data (ML formula; CHECKS.md §1 [IASPEI-web]).
+determining earthquake magnitudes from digital data (ML formula; docs/check-values.md §1
+[IASPEI-web]).
 """
 
 from __future__ import annotations
@@ -112,7 +113,7 @@ def ml_from_amplitude(amplitude_nm: ArrayLike, r_km: ArrayLike) -> NDArray[np.fl
     Returns
     -------
     ndarray of float64
-        ``log10(A) + 1.11 log10(R) + 0.00189 R − 2.09`` (IASPEI standard; CHECKS.md §1).
+        ``log10(A) + 1.11 log10(R) + 0.00189 R − 2.09`` (IASPEI standard; docs/check-values.md §1).
     """
     a = np.asarray(amplitude_nm, dtype=np.float64)
     return np.asarray(np.log10(a) + _ml_distance_term(np.asarray(r_km, dtype=np.float64)))

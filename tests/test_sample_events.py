@@ -1,10 +1,11 @@
 """The invented demo network of ``sample_events/``: reproducibility, counts, truth consistency.
 
 The data are synthetic, so most checks compare the data files with the truth files written
-beside them. Outside references: the IASPEI standard ML formula (CHECKS.md §1 [IASPEI-web],
-verified; its worked examples CHECKS.md §3, computed), obspy's geodetics (``gps2dist_azimuth``,
-``locations2degrees``) for the distance columns, obspy's QuakeML reader for the December file,
-and Fisher's z transform for the pair correlations (Fisher 1921; DESIGN §9, from memory).
+beside them. Outside references: the IASPEI standard ML formula (docs/check-values.md §1
+[IASPEI-web], verified; its worked examples docs/check-values.md §3, computed), obspy's geodetics
+(``gps2dist_azimuth``, ``locations2degrees``) for the distance columns, obspy's QuakeML reader for
+the December file, and Fisher's z transform for the pair correlations (Fisher 1921; docs/pairs.md,
+from memory).
 """
 
 from __future__ import annotations
@@ -83,7 +84,7 @@ AMPLITUDE_ROUNDING = float(np.log10(1.0005))
 
 def iaspei_ml(amplitude_nm: np.ndarray, r_km: np.ndarray) -> np.ndarray:
     """ML = log10(A) + 1.11 log10(R) + 0.00189 R - 2.09, A in nm (Wood-Anderson, magnification
-    1), R hypocentral km: IASPEI standard, CHECKS.md §1 [IASPEI-web] (verified)."""
+    1), R hypocentral km: IASPEI standard, docs/check-values.md §1 [IASPEI-web] (verified)."""
     return np.log10(amplitude_nm) + 1.11 * np.log10(r_km) + 0.00189 * r_km - 2.09
 
 
@@ -303,8 +304,8 @@ def test_rows_exist_only_for_operating_stations_within_250_km(
 def test_amplitude_gives_back_the_magnitude_through_the_iaspei_formula(
     readings: pd.DataFrame,
 ) -> None:
-    # The formula as written here reproduces the worked examples of CHECKS.md §3 (computed from
-    # the verified IASPEI formula; tolerance 1e-4 as there).
+    # The formula as written here reproduces the worked examples of docs/check-values.md §3
+    # (computed from the verified IASPEI formula; tolerance 1e-4 as there).
     examples = [(1e6 / 2080.0, 100.0, 3.0009), (100.0, 10.0, 1.0389), (1000.0, 100.0, 3.3190)]
     examples.append((5000.0, 500.0, 5.5498))
     for amp, r, ml in examples:
@@ -404,7 +405,7 @@ def test_correlated_pairs_show_their_correlation(clean: pd.DataFrame) -> None:
         n = len(common)
         assert n >= 60
         r = np.corrcoef(e1.loc[common], e2.loc[common])[0, 1]
-        # Fisher's z: atanh(r) ~ N(atanh(rho), 1/(n - 3)); 3 SE (DESIGN §9, from memory).
+        # Fisher's z: atanh(r) ~ N(atanh(rho), 1/(n - 3)); 3 SE (docs/pairs.md, from memory).
         assert abs(np.arctanh(r) - np.arctanh(rho)) < 3.0 / np.sqrt(n - 3), r
         # ... and far from independence.
         assert np.arctanh(r) > 3.0 / np.sqrt(n - 3)

@@ -1,1 +1,1 @@
-"""Typer command line: thin adapters over the library API (STYLE items 15-17)."""
+"""Typer command line: thin adapters over the library API (docs/conventions.md items 15-17)."""

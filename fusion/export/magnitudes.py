@@ -2,8 +2,8 @@
 
 The tabular exports have one row per event (the current row of the fused-magnitude store) and
 these columns, in this order (names follow QuakeML where it has a term: ``mag``,
-``station_count``, ``evaluation_status``; STYLE item 11). Each entry gives the name, the unit
-and the fused-store column it comes from:
+``station_count``, ``evaluation_status``; docs/conventions.md item 11). Each entry gives the name,
+the unit and the fused-store column it comes from:
 
 ``event_id`` (-; from ``event_id``)
     event identifier of the source bulletin

@@ -1,4 +1,6 @@
-"""Anchors: what fixes the level of station biases and event magnitudes (DESIGN §3, §6).
+"""Anchors: what fixes the level of station biases and event magnitudes.
+
+See docs/model.md §3 (anchors) and docs/rolling-fit.md §4 (continuity across refits).
 
 In each connected component the data cannot tell M_j + δ, b_i − δ from M_j, b_i; one anchor per
 component fixes δ. The anchor shifts every b̂ and M̂ of the component by one constant; weights,
@@ -17,7 +19,7 @@ A3    ``reference_events``   M_j = M*_j for events of known magnitude (hard), or
 A4    ``mean_magnitude``     the γ-weighted mean of M̂_j over the fitted events of a
                              component equals a known value. **Not recommended**: the
                              population changes with seismicity and detection, and each
-                             station's mean covers a different subset of events (DESIGN §3)
+                             station's mean covers a different subset of events (docs/model.md §3)
 ====  =====================  ===============================================================
 
 Components holding no anchor (no reference station, no reference event) are pinned by a
@@ -25,7 +27,7 @@ fallback, mean bias = μ0 over the component, and their stations are reported un
 (:mod:`fusion.model.connectivity`). μ0, the level the bias prior pulls toward, is the anchor level
 B_R for A1 and A2 and 0 for A3 and A4, so the prior never fights the anchor.
 
-A reference *station* that was split into epochs (DESIGN §6) shares its weight ϖ among its
+A reference *station* that was split into epochs (docs/epochs.md) shares its weight ϖ among its
 units in proportion to their Σγ, so a station with an instrument change is not counted twice.
 
 Calibration uncertainty (the SD of the common level) [derived]:
@@ -68,7 +70,7 @@ __all__ = [
 
 
 class AnchorKind(StrEnum):
-    """The four anchors of DESIGN §3."""
+    """The four anchors of docs/model.md §3."""
 
     REFERENCE_SET = "reference_set"
     MEDIAN = "median"
@@ -212,7 +214,7 @@ class Anchor:
     mean_magnitude : float, default=nan
         Known mean magnitude, required for A4.
     previous : StationParameters, optional
-        The previous model, for continuity of A1/A2 across refits (DESIGN §6).
+        The previous model, for continuity of A1/A2 across refits (docs/rolling-fit.md §4).
     """
 
     kind: AnchorKind = AnchorKind.REFERENCE_SET
@@ -469,8 +471,8 @@ def level_constraints(
     the previous model also has (``previous_match``). A component holding overlap units is
     tied to the previous biases there: Σ_O ϖ (b − b_prev) = 0 (A1) or median_O (b − b_prev) = 0
     (A2). A component with reference units but no overlap takes the previous level, the
-    weighted mean (A1) or median (A2) of b_prev over O (DESIGN §6: "when R changes compute the
-    new B_R from stations overlapping in the window").
+    weighted mean (A1) or median (A2) of b_prev over O (docs/rolling-fit.md §4: "when R changes
+    compute the new B_R from stations overlapping in the window").
     """
     K = unit_ids.shape[0]
     N = event_ids.shape[0]

@@ -1,10 +1,10 @@
-"""Joint fit of station biases and error variances with non-detections (DESIGN §11.2, issue 7).
+"""Joint fit of station biases and error variances with non-detections (docs/censoring.md §4).
 
 A station that was operating but did not detect an event says its station magnitude was below
 its noise threshold t_ij. At small magnitudes the detecting stations are those with positive
 errors, so a fit on detections only biases the events high and the station parameters too
-(DESIGN §5.3 [sim]: detected-only b RMSE 0.094, median σ̂/σ 0.938 in the censoring mode). This
-module fits (b_i, σ_i²) on the censored likelihood of all cells, with detections D,
+(docs/censoring.md §1 [sim]: detected-only b RMSE 0.094, median σ̂/σ 0.938 in the censoring mode).
+This module fits (b_i, σ_i²) on the censored likelihood of all cells, with detections D,
 non-detections C (threshold t_ij, hard or soft) and clipped readings U (lower bounds u_ij):
 
     ℓ = Σ_D [log φ((m_ij − b_i − M_j)/σ_i) − log σ_i] + Σ_C log Φ((t_ij − b_i − M_j)/s_i)
@@ -16,8 +16,8 @@ profiled REML-EM fit (:func:`fusion.model.reml_em.fit_reml_em`). One iteration:
 1. **Event step.** For every event, Newton's method for M_j given (b, σ)
    (:func:`fusion.network.censoring.fit_censored`; Tobin 1958, Ringdal 1976), warm-started from the
    previous M̂_j; V_j = 1/I_j, I_j = −ℓ''_j(M̂_j). Only non-detections with detection probability
-   Φ((M̂_j + b_i − t_ij)/s_i) above ``min_detection_probability`` enter C (DESIGN §11.2); the
-   others add log Φ ≈ 0 and only slow the iteration. C is re-selected in the first five
+   Φ((M̂_j + b_i − t_ij)/s_i) above ``min_detection_probability`` enter C (docs/censoring.md §4);
+   the others add log Φ ≈ 0 and only slow the iteration. C is re-selected in the first five
    iterations and at every EB refresh and held fixed in between (a cell at the cut-off would
    otherwise flip in and out and the iteration cycle; measured: steps stalled at 2e-5 before
    this rule); cells below 1e-9 at the start are left out for good. Detections enter with the
@@ -25,10 +25,11 @@ profiled REML-EM fit (:func:`fusion.model.reml_em.fit_reml_em`). One iteration:
    a_ij = ω_ij/σ_i² (flagged pairs: the GLS row precision Σ_j⁻¹1 of
    :func:`fusion.network.gls_blocks.precision_row_weights`).
 2. **Outlier weights** ω_ij of the detections, in events with three or more detections (with
-   fewer an outlier cannot be attributed, DESIGN §5.3), from the leave-one-station-out residual
-   linearised about M̂_j: e_ij = y_ij − M̂_j^(−i) = r_ij I_j/(I_j − a_ij) with variance
+   fewer an outlier cannot be attributed, docs/estimator.md §6), from the leave-one-station-out
+   residual linearised about M̂_j: e_ij = y_ij − M̂_j^(−i) = r_ij I_j/(I_j − a_ij) with variance
    v_ij = σ_i² + 1/(I_j − a_ij) [derived from one Newton step of ℓ_j without row i; in the GLS
-   case it is the exact LOSO residual of DESIGN §8.2]. ``outliers`` chooses the model:
+   case it is the exact LOSO residual of docs/network-magnitude.md §7]. ``outliers`` chooses the
+   model:
 
    - ``"mixture"`` (default), a contaminated normal (Tukey 1960 [from memory]): with
      probability ε a detection carries an extra N(0, τ²) error. The posterior outlier
@@ -42,28 +43,28 @@ profiled REML-EM fit (:func:`fusion.model.reml_em.fit_reml_em`). One iteration:
    - ``"none"``: ω = 1.
 
    Why the mixture: under censoring the outlying cells concentrate among the detections of
-   small events (measured on the DESIGN §13 censor simulation: 4.7 % of the detections of
+   small events (measured on the docs/simulation.md censor simulation: 4.7 % of the detections of
    one-detection events are outlier cells, 1.7 % of all detections, 1 % of all cells). A
    Student-t(4) weight bounds an outlier's share of the σ-step only at (ν + 1)/κ_ν ≈ 6.4 clean
    cells; the mixture removes gross outliers from the σ-step. Median σ̂/σ over 5 seeds
    (``bench/censoring_accuracy.py``): mixture 0.993, Student-t 1.053, none 1.174.
 3. **Station step**, one EM step of the censored-normal model x_ij = m_ij − M̂_j ~ N(b_i, σ_i²)
-   (Dempster, Laird & Rubin 1977; DESIGN §11.2). Detections: E x = x. Non-detections
+   (Dempster, Laird & Rubin 1977; docs/censoring.md §4). Detections: E x = x. Non-detections
    (x < t_ij − M̂_j): with α = (t_ij − M̂_j − b_i)/s_i and λ = φ(α)/Φ(α),
 
        E x = b_i − (σ_i²/s_i) λ,      Var x = σ_i² − (σ_i⁴/s_i²) λ(α + λ)
 
    [derived: x ~ N(b, σ²) seen through a detection probability Φ((x − c)/g); the hard threshold
-   g = 0 gives the truncated-normal moments of DESIGN §11.2, CHECKS.md §7]; clipped readings
-   the mirror image above u_ij − M̂_j (:func:`fusion.network.censoring.truncated_normal_moments`).
-   Then
+   g = 0 gives the truncated-normal moments of docs/censoring.md §4, docs/check-values.md §7];
+   clipped readings the mirror image above u_ij − M̂_j
+   (:func:`fusion.network.censoring.truncated_normal_moments`). Then
 
        b_i  = (Σ_D γω x + Σ_{C∪U} γ E x + μ0 σ_i²/τ_b²) / (Σ_D γω + Σ_{C∪U} γ + σ_i²/τ_b²),
        σ_i² = (d0 s0² + Σ_D γ c_ij (r_ij² + V_j) + Σ_{C∪U} γ E(x − b_i)²) / (d0 + Σ γ c_ij),
 
    γ the forgetting weights, c_ij = 1 − π_ij for detections (mixture; 1 otherwise and for
-   censored cells; ``student_t`` uses ω r²/κ_ν + V). V_j is the REML correction of DESIGN §4:
-   r_ij is measured from an estimate M̂_j that used r_ij. With a robust outlier model the
+   censored cells; ``student_t`` uses ω r²/κ_ν + V). V_j is the REML correction of docs/estimator.md
+   §2: r_ij is measured from an estimate M̂_j that used r_ij. With a robust outlier model the
    σ-step uses the cells of events with three or more detections only, the events where an
    outlying detection can be recognised; the b-step uses every event.
 4. **Re-anchor** with the REML-EM's constraints (:func:`fusion.model.anchors.level_constraints`,
@@ -92,10 +93,11 @@ M_j out gives the Schur-complement normal matrix of the REML-EM b-step,
     A = diag(Σ_j γ_j h_ij) − X' diag(γ_j/I_j) X + diag(1/τ_b²),    X_ji = h_ij,
 
 and Cov(b̂) is the top-left block of the inverse of the bordered matrix [A C; C' 0] with the
-anchor columns C [derived: the same construction as the REML-EM's Var(b̂), DESIGN §5.2]. It is
-used instead of the REML-EM's Var(b̂) because it counts the information the non-detections add
+anchor columns C [derived: the same construction as the REML-EM's Var(b̂), docs/estimator.md §5]. It
+is used instead of the REML-EM's Var(b̂) because it counts the information the non-detections add
 and is evaluated at the censored estimates; without censored cells it is the REML-EM's formula.
-Beyond ``dense_cov_max`` units the diagonal approximation 1/A_ii of DESIGN §5.2 is returned.
+Beyond ``dense_cov_max`` units the diagonal approximation 1/A_ii of docs/estimator.md §5 is
+returned.
 
 Simplifications (documented, not hidden): non-detections and clipped readings are independent
 of the other stations' errors and are taken as clean (no outlier component); flagged-pair
@@ -200,7 +202,7 @@ _EPS_RANGE = (1e-4, 0.5)
 _HOPELESS_Z = -6.0
 #: Iterations that re-select the censored set C every time (then only at EB refreshes).
 _RESELECT_ITERATIONS = 5
-#: Detections with a REML-EM robust weight below this start as outliers (DESIGN §5.3).
+#: Detections with a REML-EM robust weight below this start as outliers (docs/estimator.md §6).
 _OUTLIER_WEIGHT = 0.3
 
 
@@ -619,7 +621,7 @@ def _outlier_weights(
 def _initial_mixture(
     c: _Cells, start: RemlEmFit, b: NDArray[np.float64], s0_2: float
 ) -> tuple[float, float]:
-    """ε and τ² from the REML-EM's outliers (robust weight below 0.3, DESIGN §5.3)."""
+    """ε and τ² from the REML-EM's outliers (robust weight below 0.3, docs/estimator.md §6)."""
     w = start.row_weight[c.d_row]
     out = c.d_weighted & np.isfinite(w) & (w < _OUTLIER_WEIGHT)
     n_w = int(np.count_nonzero(c.d_weighted))
@@ -658,8 +660,8 @@ def nondetection_moments(
 
         E x = mean − (sd²/s) λ,      Var x = sd² − (sd⁴/s²) λ(α + λ).
 
-    ``soft_sd`` = 0 gives the truncated normal x < bound of DESIGN §11.2 (Johnson, Kotz &
-    Balakrishnan 1994, ch. 13 [from memory]; check values in CHECKS.md §7).
+    ``soft_sd`` = 0 gives the truncated normal x < bound of docs/censoring.md §4 (Johnson, Kotz &
+    Balakrishnan 1994, ch. 13 [from memory]; check values in docs/check-values.md §7).
 
     Parameters
     ----------
@@ -676,7 +678,7 @@ def nondetection_moments(
 
     Examples
     --------
-    CHECKS.md §7 (verified against R mvrtn): N(100, 15²) below 80 has mean 73.02798 and
+    docs/check-values.md §7 (verified against R mvrtn): N(100, 15²) below 80 has mean 73.02798 and
     variance 36.95043.
 
     >>> m, v = nondetection_moments(100.0, 15.0, 80.0)
@@ -912,7 +914,7 @@ def _information(
 
 
 def _diagonal_information(c: _Cells, es: _EventStep) -> NDArray[np.float64]:
-    """Diagonal of the profiled information: Σγh − Σ g h² per unit (DESIGN §5.2 form)."""
+    """Diagonal of the profiled information: Σγh − Σ g h² per unit (docs/estimator.md §5 form)."""
     D, X, g = _information(c, es)
     return np.asarray(D - np.asarray(X.multiply(X).T @ g).ravel(), dtype=np.float64)
 
@@ -1083,7 +1085,8 @@ def fit_censored_stations(
     -----
     With neither non-detections nor clipped readings and ``outliers="none"`` the fixed point
     is the REML-EM's Gaussian one [derived: the event step is then the GLS and the station
-    step the unprofiled EM of DESIGN §5.1]; ``tests/fusion/model/test_censored_fit.py`` checks it.
+    step the unprofiled EM of docs/estimator.md §4]; ``tests/fusion/model/test_censored_fit.py``
+    checks it.
     """
     _check(
         soft_threshold_sd,
@@ -1394,9 +1397,9 @@ def loo_predictor(obs: ObservationSet, fit: RemlEmFit | CensoredStationFit) -> N
     """μ_ij = M̂_j^(−i) + b̂_i for every row: the predictor of the detection curves.
 
     For a :class:`~fusion.model.reml_em.RemlEmFit` the detections get the exact GLS leave-one-out
-    estimate (DESIGN §8.2) and the non-detections the event's M̂_j (which they did not enter).
-    For a :class:`CensoredStationFit` a row's own likelihood term is removed by one Newton step,
-    M̂^(−i) = M̂ − g_i/(I_j − h_i), g_i and h_i the row's score and curvature at M̂_j
+    estimate (docs/network-magnitude.md §7) and the non-detections the event's M̂_j (which they did
+    not enter). For a :class:`CensoredStationFit` a row's own likelihood term is removed by one
+    Newton step, M̂^(−i) = M̂ − g_i/(I_j − h_i), g_i and h_i the row's score and curvature at M̂_j
     [derived]; rows whose event has nothing else get NaN.
 
     Parameters
@@ -1475,7 +1478,8 @@ class NondetectionMode(StrEnum):
     unused = "unused"  #: no censoring information (or switched off): detections only
     known_thresholds = "known-thresholds"  #: joint fit with the stored thresholds
     estimated_thresholds = "estimated-thresholds"  #: joint fit, missing thresholds estimated
-    safe_cells = "safe-cells"  #: no thresholds: fit on safe cells only (DESIGN §11.2 fallback)
+    #: no thresholds: fit on safe cells only (the fallback of docs/censoring.md §8)
+    safe_cells = "safe-cells"
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -1577,7 +1581,7 @@ def refit_with_nondetections(
        detection curves (:func:`fusion.model.thresholds.fit_detection_curves`) on the
        leave-one-out predictor of the current fit (:func:`loo_predictor`), imputation of the
        missing thresholds, joint fit; ``threshold_rounds`` rounds, each starting its curves
-       from the previous round's censored fit (measured on the DESIGN §13 censor simulation
+       from the previous round's censored fit (measured on the docs/simulation.md censor simulation
        with hidden thresholds: mean threshold error +0.17, +0.08, +0.06, +0.05 after rounds
        1–4). Mode ``estimated-thresholds``.
     2. Otherwise, with stored thresholds or clipped readings: one joint fit

@@ -1,4 +1,4 @@
-"""Identifiability of the station model: components, anchors and odd cycles (DESIGN §3).
+"""Identifiability of the station model: components, anchors and odd cycles (docs/model.md §3).
 
 **Level.** In each connected component of the station–event graph (events with at least two
 distinct stations) the likelihood is unchanged by M_j → M_j + δ, b_i → b_i − δ, so every
@@ -54,7 +54,7 @@ class Connectivity:
         Events with at least two distinct stations in each component.
     bipartite : ndarray of bool, shape (n_components,)
         True if the co-observation graph of the component has no odd cycle: only sums of
-        variances along its edges are identifiable (DESIGN §3).
+        variances along its edges are identifiable (docs/model.md §3).
     anchored : ndarray of bool, shape (n_components,)
         True if the component holds an anchor (reference station or reference event).
     uncalibrated : ndarray of bool, shape (K,)
@@ -160,7 +160,7 @@ def connectivity_report(
     anchor_stations: NDArray[np.bool_] | None = None,
     anchor_events: NDArray[np.bool_] | None = None,
 ) -> Connectivity:
-    """Nightly connectivity check of DESIGN §3: components, anchors, bipartiteness.
+    """Nightly connectivity check of docs/model.md §3: components, anchors, bipartiteness.
 
     Parameters
     ----------
@@ -256,7 +256,7 @@ def _two_station_bipartite(
 def signless_laplacian(
     event: NDArray[np.int64], station: NDArray[np.int64], n_stations: int
 ) -> sparse.csr_matrix:
-    """Q = D_G + A_G of the co-observation graph, the normal matrix of the σ² system (DESIGN §3).
+    """Q = D_G + A_G of the co-observation graph, normal matrix of σ² (docs/model.md §3.3).
 
     Each co-observing pair (k, l) counts once per shared event, i.e. Q = Σ_events Σ_{k<l}
     (e_k + e_l)(e_k + e_l)'. Builds the Σ n_j² within-event pairs: meant for diagnostics and

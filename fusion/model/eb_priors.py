@@ -1,11 +1,11 @@
-"""Empirical-Bayes priors of the station model: error variances and biases (DESIGN §5.2).
+"""Empirical-Bayes priors of the station model: error variances and biases (docs/estimator.md §5).
 
 Error variances
 ---------------
 Each station unit i has a residual variance s_i² on d_i effective degrees of freedom,
 d_i = Σ_j γ_j (1 − w_ij) (the information spent on the event magnitudes is subtracted, because
-E r_ij² = σ_i²(1 − w_ij) [derived, DESIGN §4]). Following Smyth (2004) the true variances are
-drawn from a scaled inverse-χ² prior with d0 degrees of freedom and scale s0², and the
+E r_ij² = σ_i²(1 − w_ij) [derived, docs/estimator.md §2]). Following Smyth (2004) the true variances
+are drawn from a scaled inverse-χ² prior with d0 degrees of freedom and scale s0², and the
 posterior (moderated) variance is
 
     σ̃_i² = (d0 s0² + d_i s_i²) / (d0 + d_i).
@@ -19,14 +19,14 @@ The hyperparameters come from the moments of log s² (Smyth 2004, §6.2):
 with d0 = ∞ (and s0² = exp ē) when the right-hand side is ≤ 0, i.e. when the observed spread
 of log s² is no larger than sampling alone explains. ψ is the digamma function, ψ' the
 trigamma function, inverted by Smyth's Newton iteration (:func:`trigamma_inverse`). Only
-stations with d_i ≥ 5 enter the fit (DESIGN §5.2).
+stations with d_i ≥ 5 enter the fit (docs/estimator.md §5).
 
 Biases
 ------
 Biases relative to the anchor get the prior b_i ~ N(μ0, τ_b²). Given unshrunk estimates b̂_i with
 sampling variances v_i, the moment estimator over stations with at least 30 events (Σγ ≥ 30) is
-τ̂_b² = max(0, mean (b̂_i − μ0)² − mean v_i) (DESIGN §5.2). In the fit the prior is the ridge
-1/τ_b² on the normal matrix, so the fitted b̂ are already shrunk by τ_b²/(τ_b² + v_i);
+τ̂_b² = max(0, mean (b̂_i − μ0)² − mean v_i) (docs/estimator.md §5). In the fit the prior is the
+ridge 1/τ_b² on the normal matrix, so the fitted b̂ are already shrunk by τ_b²/(τ_b² + v_i);
 :func:`fit_bias_prior` undoes that shrinkage before taking moments (otherwise the moment
 iteration would drift to 0) [derived].
 
@@ -61,7 +61,7 @@ __all__ = [
 #: 1/Φ⁻¹(3/4) = 1.4826 (Hampel 1974 [from memory]; common practice).
 MAD_TO_SD = float(1.0 / special.ndtri(0.75))
 
-#: Prior degrees of freedom before the first empirical-Bayes fit (DESIGN §5, "config").
+#: Prior degrees of freedom before the first empirical-Bayes fit (docs/estimator.md §3, "config").
 DEFAULT_D0 = 4.0
 #: Prior bias variance before the first empirical-Bayes fit, magnitude units squared: a weak
 #: prior (SD 1 magnitude unit) that only keeps the normal matrix positive definite.
@@ -73,7 +73,7 @@ TAU_B2_FLOOR = 1e-6
 
 @dataclass(frozen=True, slots=True)
 class EBPrior:
-    """Hyperparameters of the station model's priors (DESIGN §5.2).
+    """Hyperparameters of the station model's priors (docs/estimator.md §5).
 
     Attributes
     ----------
@@ -101,7 +101,7 @@ class EBPrior:
 
 
 def moderated_variance(s2: ArrayLike, d: ArrayLike, d0: float, s0_2: float) -> NDArray[np.float64]:
-    """Posterior error variance σ̃² = (d0 s0² + d s²)/(d0 + d) (Smyth 2004; CHECKS.md §7, verified).
+    """Posterior error variance σ̃² = (d0 s0² + d s²)/(d0 + d) (Smyth 2004; docs/check-values.md §7).
 
     Parameters
     ----------
@@ -119,7 +119,7 @@ def moderated_variance(s2: ArrayLike, d: ArrayLike, d0: float, s0_2: float) -> N
 
     Examples
     --------
-    CHECKS.md §7: d0 = 4, s0² = 0.04, d = 6, s² = 0.09 gives 0.07.
+    docs/check-values.md §7: d0 = 4, s0² = 0.04, d = 6, s² = 0.09 gives 0.07.
 
     >>> float(moderated_variance(0.09, 6.0, 4.0, 0.04))
     0.07
@@ -183,7 +183,7 @@ def fit_variance_prior(
     d : array_like, shape (K,)
         Residual degrees of freedom d_i.
     min_dof : float, default=5.0
-        Only stations with d_i >= this enter the fit (DESIGN §5.2).
+        Only stations with d_i >= this enter the fit (docs/estimator.md §5).
     min_stations : int, default=3
         Fewer eligible stations return ``None`` (keep the current prior).
 
@@ -233,7 +233,7 @@ def fit_bias_prior(
     current_tau_b2 : float, default=inf
         The τ_b² the biases were fitted with; the shrinkage τ²/(τ² + v) is undone first.
     min_events : float, default=30.0
-        DESIGN §5.2: n_i >= 30.
+        docs/estimator.md §5: n_i >= 30.
 
     Returns
     -------
@@ -260,7 +260,7 @@ def initial_error_variance(
     *,
     max_events: int = 20_000,
 ) -> float:
-    """Start value s0² = median over events of (1.4826·MAD_j)² (DESIGN §5, "init").
+    """Start value s0² = median over events of (1.4826·MAD_j)² (docs/estimator.md §3, "init").
 
     Uses events with at least 3 readings when there are any, else events with 2; the MAD of
     each event is taken about its median (vectorized: one sort by (event, value) per pass).
@@ -325,7 +325,7 @@ def refreshed_prior(
     prior: EBPrior,
     prior_mean: float,
 ) -> EBPrior:
-    """The empirical-Bayes refresh of (d0, s0², τ_b²) shared by the estimators (DESIGN §5.2).
+    """The empirical-Bayes refresh of (d0, s0², τ_b²) shared by both fits (docs/estimator.md §5).
 
     Parameters
     ----------

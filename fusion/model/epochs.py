@@ -1,12 +1,13 @@
-"""Station epochs: CUSUM detection of bias steps and the split of a station into epochs (DESIGN §6).
+"""Station epochs: CUSUM detection of bias steps and the split into epochs (docs/epochs.md).
 
 A station whose bias steps (an instrument or gain change) shows it in its time-ordered
 leave-one-station-out z scores z_ij = (y_ij − M̂_j^(−i))/sqrt(s_i² + V_j^(−i)), which are
-N(0, 1) under the model (DESIGN §8.2). A two-sided CUSUM (Page 1954) accumulates evidence:
+N(0, 1) under the model (docs/network-magnitude.md §7). A two-sided CUSUM (Page 1954) accumulates
+evidence:
 
     S⁺_t = max(0, S⁺_{t−1} + x_t − k),   S⁻_t = max(0, S⁻_{t−1} − x_t − k),   S_0 = 0,
 
-with alarm at the first t where S⁺_t ≥ h or S⁻_t ≥ h (k = 0.5, h = 5 by default, DESIGN §6
+with alarm at the first t where S⁺_t ≥ h or S⁻_t ≥ h (k = 0.5, h = 5 by default, docs/epochs.md
 [from memory]). The change time is estimated as the start of the run that crossed: the row after
 the last time the alarming sum was 0 before the alarm (Page 1954; Montgomery, *Introduction to
 Statistical Quality Control*, §9.1 [from memory]).
@@ -343,7 +344,7 @@ def detect_bias_steps(
     clip: float | None = 3.0,
     serial_correlation: bool = True,
 ) -> BiasStepResult:
-    """Find bias steps per station with a two-sided CUSUM on its leave-one-out z (DESIGN §6).
+    """Find bias steps per station with a two-sided CUSUM on its leave-one-out z (docs/epochs.md).
 
     Parameters
     ----------

@@ -1,4 +1,4 @@
-"""The estimator contract of magfuse without importing scikit-learn (STYLE items 1, 20).
+"""The estimator contract without importing scikit-learn (docs/conventions.md items 1, 20).
 
 :class:`ParamsMixin` gives an estimator whose ``__init__`` takes keyword-only parameters and only
 assigns them:

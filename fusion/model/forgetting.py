@@ -1,4 +1,4 @@
-"""Rolling fit: exponential forgetting, the hard window and warm starts (DESIGN §6).
+"""Rolling fit: exponential forgetting, the hard window and warm starts (docs/rolling-fit.md §1).
 
 The nightly refit is exact, with event weights
 
@@ -8,7 +8,7 @@ inside a hard window of ``window_days`` (about three half-lives); events after `
 left out (a fit "as of" a time never sees later data). The weights enter every sum of the fit
 as frequency weights, so Σγ plays the role of the sample size in the empirical-Bayes step.
 A plain sliding window would make b and σ jump when a burst of events leaves it; exponential
-weights adapt smoothly within about one half-life (DESIGN §6).
+weights adapt smoothly within about one half-life (docs/rolling-fit.md §1).
 
 A warm start (and the anchor's continuity) takes the previous model's parameters unit by unit.
 :func:`match_previous_units` pairs each current unit with the previous unit that holds most of
@@ -70,7 +70,7 @@ def time_weights(
     half_life_days: float = np.inf,
     window_days: float = np.inf,
 ) -> TimeWeights:
-    """γ_j = 0.5 ** (age_j / h) inside the hard window (DESIGN §6).
+    """γ_j = 0.5 ** (age_j / h) inside the hard window (docs/rolling-fit.md §1).
 
     Parameters
     ----------
@@ -126,7 +126,7 @@ class WarmStart:
     sigma2 : ndarray of float, shape (K,)
         Starting σ_i² (magnitude units squared); NaN where unknown (s0² is used).
     prior : EBPrior or None
-        Starting hyperparameters; ``None`` starts from the defaults of DESIGN §5.
+        Starting hyperparameters; ``None`` starts from the defaults of docs/estimator.md §3.
     """
 
     bias: NDArray[np.float64]
@@ -221,7 +221,7 @@ def warm_start(
     match: NDArray[np.int64] | None = None,
     d0: float = 4.0,
 ) -> WarmStart:
-    """Starting values from a previous model (DESIGN §6), unit by unit.
+    """Starting values from a previous model (docs/rolling-fit.md §3), unit by unit.
 
     Parameters
     ----------

@@ -1,15 +1,15 @@
-"""Correlated station pairs without ground truth (DESIGN §9, §10).
+"""Correlated station pairs without ground truth (docs/pairs.md).
 
 Two stations whose errors share a term (co-located sites, a common path) break the independence
 the GLS weights assume, and a plain residual correlation cannot find them: with all-station GLS
 residuals and independent errors E[r_kj r_lj] = −V_j, a null correlation of −1/(n−1) for n
-equal stations (DESIGN §9, worked example E4).
+equal stations (docs/pairs.md, worked example E4).
 
 Leave-two-out statistic
 -----------------------
 For a pair (k, l) and each event j holding both and at least one other station, the reference
 M̃_j is the GLS estimate over S_j without k, l and their current flagged partners, with variance
-Ṽ_j. With y_ij = m_ij − b̂_i and u_kj = y_kj − M̃_j [derived, DESIGN §9]:
+Ṽ_j. With y_ij = m_ij − b̂_i and u_kj = y_kj − M̃_j [derived, docs/pairs.md]:
 
     E[u_k u_l] = c_kl + Ṽ_j,   Var u_k = σ_k² + Ṽ_j,
     q_j = u_kj u_lj − Ṽ_j,     ĉ_kl = Σ γ_j q_j / Σ γ_j,   ρ̂ = ĉ/(σ_k σ_l),
@@ -33,14 +33,14 @@ pair that loses to a more significant pair of one of its stations is kept in the
 status ``paired_elsewhere``. The next pass builds references without those partners (and with
 their covariance in the other references); the search stops when the partner set repeats.
 
-The covariance handed on is shrunk and capped (DESIGN §8.1, §9):
+The covariance handed on is shrunk and capped (docs/network-magnitude.md §2; docs/pairs.md):
 c = ĉ·n/(n + n0) with n the effective number of events (Σγ)²/Σγ², then
 |c| ≤ 0.9·min(σ_k², σ_l²), i.e. |ρ| ≤ 0.9·min(σ_k/σ_l, σ_l/σ_k), which keeps both GLS weights
 of the pair positive (a larger ρ gives the noisier station a negative weight, example E3).
 
 Robust weights
 --------------
-A fitter's Student-t weight ω_ij (DESIGN §5.3) comes from a leave-one-out residual whose
+A fitter's Student-t weight ω_ij (docs/estimator.md §6) comes from a leave-one-out residual whose
 reference holds the tested stations k and l; using every ω in the references therefore makes the
 reference depend on e_k and e_l and biases ĉ negative. Measured on the §13 simulator without
 pairs (K = 40, N = 4000, true parameters, ν = 4 weights, seeds 5 and 6): mean T −0.72…−0.75
@@ -67,7 +67,7 @@ weighted mean Ṽ [derived]; its null value is ρ0 = V̄/sqrt((σ_k² + V̄)(σ_
 equal stations, E4). The interval is Fisher's: atanh(r_u) ± z_{1−α/2}/sqrt(n_eff − 3) (Fisher
 1921 [from memory]), mapped back to ρ through the same relation and clipped to [−1, 1].
 
-Label-free global checks (DESIGN §10)
+Label-free global checks (docs/pairs.md §8)
 -------------------------------------
 :func:`global_independence_test` is a parametric bootstrap of G = Σ T² over the unflagged
 pairs; :func:`difference_tetrads` is the model-free tetrad diagnostic.
@@ -117,7 +117,8 @@ __all__ = [
     "min_shared_for_power",
 ]
 
-#: Largest |ρ| allowed for a flagged pair, as a fraction of min(σ_k/σ_l, σ_l/σ_k) (DESIGN §8.1).
+#: Largest |ρ| allowed for a flagged pair, as a fraction of min(σ_k/σ_l, σ_l/σ_k)
+#: (docs/network-magnitude.md §2).
 RHO_CAP_FRACTION = 0.9
 #: Confidence level of the reported interval on ρ (fraction).
 CI_LEVEL = 0.95
@@ -150,7 +151,7 @@ class PairStatus(StrEnum):
 
     FLAGGED = "flagged"
     PAIRED_ELSEWHERE = "paired_elsewhere"  # rejected, ρ̂ > 0, a station is in a stronger pair
-    NEGATIVE = "negative"  # rejected with ρ̂ ≤ 0: not used as a partner (DESIGN §9)
+    NEGATIVE = "negative"  # rejected with ρ̂ ≤ 0: not used as a partner (docs/pairs.md)
     NOT_SIGNIFICANT = "not_significant"
 
 
@@ -281,7 +282,7 @@ def fisher_z_interval(
 def min_shared_for_power(rho: ArrayLike, alpha: float = 0.05, power: float = 0.8) -> NDArray[Any]:
     """Shared events needed to detect correlation ρ, two-sided level α, given power (E11).
 
-    n = ceil(((z_{1−α/2} + z_power)/atanh ρ)² + 3) (DESIGN §9, Fisher-z approximation).
+    n = ceil(((z_{1−α/2} + z_power)/atanh ρ)² + 3) (docs/pairs.md, Fisher-z approximation).
 
     Parameters
     ----------
@@ -614,7 +615,7 @@ def _shrunk_capped(
     sl2: NDArray[np.float64],
     n0: float,
 ) -> NDArray[np.float64]:
-    """c = ĉ n/(n + n0), then |c| ≤ 0.9 min(σ_k², σ_l²) (DESIGN §8.1, §9)."""
+    """c = ĉ n/(n + n0), then |c| ≤ 0.9 min(σ_k², σ_l²) (docs/pairs.md §4)."""
     c = c_hat * n_eff / (n_eff + n0)
     cap = RHO_CAP_FRACTION * np.minimum(sk2, sl2)
     return np.clip(c, -cap, cap)
@@ -695,7 +696,7 @@ def detect_correlated_pairs(
     outlier_weight: float = 0.3,
     fdr_method: str = "bh",
 ) -> PairDetection:
-    """Find station pairs with correlated errors by the leave-two-out test (DESIGN §9).
+    """Find station pairs with correlated errors by the leave-two-out test (docs/pairs.md).
 
     Parameters
     ----------
@@ -722,10 +723,10 @@ def detect_correlated_pairs(
         n0 of the shrinkage ĉ·n/(n + n0) of the covariance handed on.
     outlier_weight : float, default=0.3
         Rows whose ω is below this are down-weighted in the references; the others count
-        fully (the design's outlier listing level, DESIGN §5.3).
+        fully (the design's outlier listing level, docs/estimator.md §6).
     fdr_method : {'bh', 'by'}, default='bh'
         Benjamini–Hochberg, or Benjamini–Yekutieli for an alarm level valid under any
-        dependence between pair tests (DESIGN §9; :mod:`fusion.model.multiple_testing`).
+        dependence between pair tests (docs/pairs.md; :mod:`fusion.model.multiple_testing`).
 
     Returns
     -------
@@ -849,7 +850,7 @@ def detect_correlated_pairs(
     return PairDetection(table=table, covariance=covariance, n_rounds=n_rounds, converged=converged)
 
 
-# -- global parametric bootstrap (DESIGN §10) --------------------------------------------------
+# -- global parametric bootstrap (docs/pairs.md §8) ------------------------------------------------
 
 
 def _global_statistic(
@@ -920,7 +921,7 @@ def global_independence_test(
     omega: ArrayLike | None = None,
     outlier_weight: float = 0.3,
 ) -> GlobalTestResult:
-    """Parametric-bootstrap test of the independence assumption (DESIGN §10).
+    """Parametric-bootstrap test of the independence assumption (docs/pairs.md §8).
 
     G = Σ T² over the tested pairs that are not flagged (T the leave-two-out T_self computed
     with the flagged pairs as partners, module docstring); ``statistic="max_abs"`` uses
@@ -1053,7 +1054,7 @@ def global_independence_test(
     )
 
 
-# -- model-free difference tetrads (DESIGN §10) ------------------------------------------------
+# -- model-free difference tetrads (docs/pairs.md §8) ----------------------------------------------
 
 
 def difference_tetrads(
@@ -1068,7 +1069,7 @@ def difference_tetrads(
 
     For distinct co-observed stations i, k, l, p and d_ik = m_i − m_k − (b_i − b_k),
     E[d_ik d_lp] = c_il − c_ip − c_kl + c_kp, zero under independence and free of the event
-    magnitudes' distribution and of σ (DESIGN §10). For a pair (i, l) and an event with the
+    magnitudes' distribution and of σ (docs/pairs.md §8). For a pair (i, l) and an event with the
     other stations O (|O| ≥ 2, flagged partners of i and l removed) the function averages
     d_ik d_lp over all ordered (k, p), k ≠ p in O, in closed form from event sums:
 
@@ -1105,7 +1106,7 @@ def difference_tetrads(
     References
     ----------
     Bollen & Ting (1993), confirmatory tetrad analysis (covariance tetrads; the difference form
-    here is [derived], DESIGN §10).
+    here is [derived], docs/pairs.md §8).
     """
     func = "difference_tetrads"
     K = obs.n_stations

@@ -1,7 +1,7 @@
 """Fitted station parameters: the hand-over between learning and the network estimate.
 
 A learned model is, for one magnitude type, a table of *station units*: a station, or one epoch
-of a station whose bias stepped (DESIGN §6). Each unit has a bias b_i with its sampling
+of a station whose bias stepped (docs/epochs.md). Each unit has a bias b_i with its sampling
 variance Var(b̂_i), a moderated error variance σ̃_i² and flags; flagged pairs carry an error
 covariance. Everything downstream (network magnitudes, dry runs, reports) takes a
 :class:`StationParameters` and never refits.
@@ -45,18 +45,18 @@ class StationParameters:
         UTC bounds of each unit; NaT means open (the first epoch starts at NaT, the last ends
         at NaT). A reading at time t belongs to the unit with start <= t < end.
     bias : ndarray, shape (K,)
-        b̂_i, magnitude units, relative to the anchor (DESIGN §3).
+        b̂_i, magnitude units, relative to the anchor (docs/model.md §3).
     bias_var : ndarray, shape (K,)
-        Var(b̂_i), magnitude units squared (DESIGN §5.2).
+        Var(b̂_i), magnitude units squared (docs/estimator.md §5).
     sigma2 : ndarray, shape (K,)
-        Moderated error variance σ̃_i², magnitude units squared (DESIGN §5.2).
+        Moderated error variance σ̃_i², magnitude units squared (docs/estimator.md §5).
     prior_dominated : ndarray of bool, shape (K,)
-        d_i < d0: the prior carries more information than the data (DESIGN §5.2).
+        d_i < d0: the prior carries more information than the data (docs/estimator.md §5).
     pairs : PairCovariance
         Flagged pairs with the (shrunk, capped) covariance used in the network estimate.
     tau_b2 : float
         Prior variance of a bias relative to the anchor; an unknown station gets bias 0 with
-        this variance (DESIGN §5.2).
+        this variance (docs/estimator.md §5).
     s0_2 : float
         Prior error variance s0²; an unknown station gets σ² = s0².
     """

@@ -1,11 +1,11 @@
-"""Profiled REML-type EM for station biases and error variances (DESIGN §4, §5).
+"""Profiled REML-type EM for station biases and error variances (docs/estimator.md §2, §3).
 
-Model (DESIGN §2): m_ij = M_j + b_i + e_ij, Var e_ij = σ_i², Cov(e_kj, e_lj) = c_kl for flagged
-pairs, errors independent across events. The event magnitudes are integrated out under a flat
-prior (REML for this model, Harville 1977 [from memory]), which removes the Neyman–Scott bias
+Model (docs/model.md §2): m_ij = M_j + b_i + e_ij, Var e_ij = σ_i², Cov(e_kj, e_lj) = c_kl for
+flagged pairs, errors independent across events. The event magnitudes are integrated out under a
+flat prior (REML for this model, Harville 1977 [from memory]), which removes the Neyman–Scott bias
 of treating M_j as free parameters (naive reweighting collapses, worked examples E8, E9).
 
-One iteration (an ECM sequence, DESIGN §5.1):
+One iteration (an ECM sequence, docs/estimator.md §4):
 
 1. **b-step.** W_j = Σ_j⁻¹ with s_i² = σ_i²/ω_ij on the diagonal and c_kl for a flagged pair
    present in the event (closed-form 2×2 inverses). Profiling M_j out gives the Schur
@@ -22,14 +22,14 @@ One iteration (an ECM sequence, DESIGN §5.1):
    Reference events (anchor A3) add a prior precision π_j on M_j: L_j uses P_j + π_j and r
    gains γ_j a_ij π_j M*_j/(P_j + π_j); a hard constraint (π = ∞) makes L_j = W_j.
 2. **E-step.** P_j = 1'W_j1, M̂_j = 1'W_j(m_j − b)/P_j, V_j = 1/P_j (with π_j as above).
-3. **Robust weights** (events with n_j >= 3 only, DESIGN §5.3): leave-one-station-out
+3. **Robust weights** (events with n_j >= 3 only, docs/estimator.md §6): leave-one-station-out
    u_ij = (m_ij − b_i − M̂_j^(−i))/sqrt(σ_i² + V_j^(−i)), ω_ij = (ν + 1)/(ν + u_ij²); a flagged
    pair is left out as a block. The first weights are centred on the per-event weighted median
-   instead of M̂^(−i) (DESIGN §5.3: start robust IRLS from the weighted median).
+   instead of M̂^(−i) (docs/estimator.md §6: start robust IRLS from the weighted median).
 4. **σ-step.** σ_i² = (d0 s0² + Σ_j γ_j (q_ij + V_j)) / (d0 + Σ_j γ_j), q_ij = r_ij² for
    unweighted rows and ω_ij r_ij²/κ_ν for robust rows; flagged covariances
    c_kl = Σ γ (r_kj r_lj + V_j)/Σ γ over shared events, shrunk by n/(n + n0) and capped at
-   |ρ| <= 0.9 min(σ_k/σ_l, σ_l/σ_k) (DESIGN §8.1, §9).
+   |ρ| <= 0.9 min(σ_k/σ_l, σ_l/σ_k) (docs/network-magnitude.md §2; docs/pairs.md).
 5. Every ``eb_every`` iterations (and once after the first) the priors (d0, s0², τ_b²) are
    refreshed by :mod:`fusion.model.eb_priors`.
 
@@ -37,17 +37,17 @@ Convergence: the estimated distances to the fixed point of b and log σ (the las
 max|Δb|, max|Δ log σ| scaled by ρ/(1 − ρ), ρ the observed linear rate, at least the step itself)
 fall below ``tol_bias`` and ``tol_log_sigma``, with the priors stable (σ of stations in
 bipartite components, which the data do not identify, get the plain step test); otherwise a
-:class:`~stations.errors.ConvergenceWarning` at ``max_iter``. The plain step test of DESIGN §5
-stops a slowly converging fit (small networks with very unequal σ, ρ ≈ 0.96) about 3 % short in
-σ (measured), hence the rate correction. When the observed rate exceeds 0.6, log σ² is
-extrapolated from three consecutive iterates by SQUAREM (Varadhan & Roland 2008, scheme S3, the
-acceleration DESIGN §5.1 names); the following EM step is the stabilising step, and an
+:class:`~stations.errors.ConvergenceWarning` at ``max_iter``. The plain step test of
+docs/estimator.md §3 stops a slowly converging fit (small networks with very unequal σ, ρ ≈ 0.96)
+about 3 % short in σ (measured), hence the rate correction. When the observed rate exceeds 0.6, log
+σ² is extrapolated from three consecutive iterates by SQUAREM (Varadhan & Roland 2008, scheme S3,
+the acceleration docs/estimator.md §4 names); the following EM step is the stabilising step, and an
 overshoot (a next step more than twice the last) halves the largest extrapolation allowed.
 Extrapolation changes the path, not the fixed point.
 
-**Scale consistency of the robust σ-step** (a deliberate refinement of DESIGN §5 step 4, which
-writes Σγω(r² + V)). With Gaussian errors the Student-t EM scale converges to about 0.69 σ² for
-ν = 4 (the fixed point c = E[(ν+1)X²/(ν + X²/c)], X ~ N(0, 1), computed by quadrature), so σ̂/σ
+**Scale consistency of the robust σ-step** (a deliberate refinement of docs/estimator.md §3 step 4,
+which writes Σγω(r² + V)). With Gaussian errors the Student-t EM scale converges to about 0.69 σ²
+for ν = 4 (the fixed point c = E[(ν+1)X²/(ν + X²/c)], X ~ N(0, 1), computed by quadrature), so σ̂/σ
 ≈ 0.83 and the event SEs shrink (measured on the §13 simulator: median σ̂/σ 0.85, 68 %
 coverage 0.59). In the diagonal case r_ij = (1 − w_ij)(y_ij − M̂_j^(−i)), so
 r_ij² = σ_i²(1 − w_ij) u_ij² [derived], E[ω r²] = κ_ν (σ_i² − V_j) with κ_ν = E[ω(X)X²]
@@ -57,7 +57,7 @@ design's literal form for comparison.
 
 Fixed point [derived]: without robust weights the σ-step settles where
 σ_i² = (d0 s0² + d_i s_i²)/(d0 + d_i) with d_i = Σγ(1 − w_ij) and s_i² = Σγ r²/d_i, i.e. at
-Smyth's moderated variance (DESIGN §5.2); with two stations only it leaves any split of
+Smyth's moderated variance (docs/estimator.md §5); with two stations only it leaves any split of
 σ_1² + σ_2² unchanged (E8).
 
 No Python loop runs over events or rows: rows are sorted by event, so per-event sums are
@@ -124,7 +124,8 @@ __all__ = ["RemlEmFit", "fit_reml_em", "t_weight_consistency"]
 
 Solver = Literal["auto", "direct", "pcg"]
 
-#: Largest |ρ| of a flagged pair as a fraction of min(σ_k/σ_l, σ_l/σ_k) (DESIGN §8.1).
+#: Largest |ρ| of a flagged pair as a fraction of min(σ_k/σ_l, σ_l/σ_k) (docs/network-magnitude.md
+#: §2).
 RHO_CAP = 0.9
 #: Inside one event a 2×2 block must stay positive definite after robust reweighting:
 #: |c| <= this × sqrt(s_k² s_l²).
@@ -179,7 +180,7 @@ class RemlEmFit:
         b̂_i relative to the anchor; units without data get the prior mean μ0.
     bias_var : ndarray
         Var(b̂_i): diagonal of the top-left block of the bordered inverse (relative to the
-        anchor); τ_b² for units without data. With ``bias_cov`` None it is the DESIGN §5.2
+        anchor); τ_b² for units without data. With ``bias_cov`` None it is the docs/estimator.md §5
         approximation σ_i²/Σγω(1 − w) (with the ridge).
     bias_cov : ndarray, shape (K, K), or None
         Full Cov(b̂) when K <= ``dense_cov_max``.
@@ -196,7 +197,7 @@ class RemlEmFit:
     outlier_rate : ndarray
         Fraction of the unit's readings with robust weight below ``outlier_weight``.
     prior_dominated : ndarray of bool
-        d_i < d0 (DESIGN §5.2).
+        d_i < d0 (docs/estimator.md §5).
     uncalibrated : ndarray of bool
         Unit in a component without anchor, or without data (:mod:`fusion.model.connectivity`).
     event_magnitude, event_variance : ndarray, shape (N,)
@@ -786,7 +787,7 @@ def _robust_weights(
     *,
     median_start: NDArray[np.float64] | None,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Student-t weights ω = (ν+1)/(ν+u²) from leave-one-station-out residuals (DESIGN §5.3).
+    """Student-t weights ω = (ν+1)/(ν+u²) from leave-one-out residuals (docs/estimator.md §6).
 
     With P'_j = P_j + π_j and the row's removed precision a_out (a_p, or a_p + a_q for a pair
     block), y − M̂^(−i) = (P'_j r_ij − a_q(r_p − r_q))/(P'_j − a_out) [derived from
@@ -861,7 +862,7 @@ def _sigma_sums(
 
 
 def _sigma_step(d: _Design, sums: _SigmaSums, prior: EBPrior) -> NDArray[np.float64]:
-    """σ_i² = (d0 s0² + Σγ(q + V_j))/(d0 + Σγ) (DESIGN §5 step 4, module docstring)."""
+    """σ_i² = (d0 s0² + Σγ(q + V_j))/(d0 + Σγ) (docs/estimator.md §3 step 4, module docstring)."""
     if np.isinf(prior.d0):
         return np.full(d.n_st, prior.s0_2)
     sigma2 = (prior.d0 * prior.s0_2 + sums.q + sums.v) / (prior.d0 + d.g_count)
@@ -895,7 +896,7 @@ def _pair_step(
 
 
 def _diag_data_information(d: _Design, w: _Weights, nm: _Normal) -> NDArray[np.float64]:
-    """Diagonal of Σ_j γ_j L_j: Σγ W_ii − Σ g_j a_ij² (DESIGN §5.2: Var b̂ ≈ 1/this)."""
+    """Diagonal of Σ_j γ_j L_j: Σγ W_ii − Σ g_j a_ij² (docs/estimator.md §5: Var b̂ ≈ 1/this)."""
     a = d.a
     return np.asarray(nm.D - d.per_station(nm.g[d.ev] * a * a), dtype=np.float64)
 
@@ -914,7 +915,7 @@ def _refresh_prior(
     prior: EBPrior,
     mu0: float,
 ) -> EBPrior:
-    """Empirical-Bayes refresh of (d0, s0², τ_b²) from this iteration's sums (DESIGN §5.2)."""
+    """Empirical-Bayes refresh of (d0, s0², τ_b²) of this iteration (docs/estimator.md §5)."""
     dof = _dof(d, nm)
     with np.errstate(invalid="ignore", divide="ignore"):
         s2 = sums.q / dof
@@ -932,7 +933,7 @@ class ConvergenceTracker:
     the largest of the last five observed step ratios below 1, taken only between consecutive
     regular EM steps (not across an extrapolation or a change of the priors, where the ratio
     says nothing about the rate), capped at 0.99; with ρ <= 1/2 the test is the plain step test
-    of DESIGN §5.
+    of docs/estimator.md §3.
     """
 
     def __init__(self) -> None:
@@ -1043,7 +1044,7 @@ def fit_reml_em(
     outlier_weight: float = 0.3,
     accelerate: bool = True,
 ) -> RemlEmFit:
-    """Fit station biases, error variances and flagged-pair covariances (DESIGN §5).
+    """Fit station biases, error variances and flagged-pair covariances (docs/estimator.md §3).
 
     Parameters
     ----------
@@ -1072,12 +1073,12 @@ def fit_reml_em(
         ... and max|Δ log σ| fall below these (and the priors are stable).
     prior : EBPrior, optional
         Starting hyperparameters; default d0 = 4, s0² = median event (1.4826 MAD)², a weak
-        τ_b² = 1 (DESIGN §5 "config", :mod:`fusion.model.eb_priors`).
+        τ_b² = 1 (docs/estimator.md §3 "config", :mod:`fusion.model.eb_priors`).
     eb_every : int, default=10
         Refresh the priors after the second iteration, then every ``eb_every`` iterations
         and at convergence; 0 keeps ``prior`` fixed.
     shrink_n0 : float, default=20.0
-        Pair covariances are shrunk by n/(n + n0) (DESIGN §9).
+        Pair covariances are shrunk by n/(n + n0) (docs/pairs.md).
     unit_station : ndarray of str, shape (K,), optional
         Station id of each unit (reference-set membership); default: the part of the unit id
         before ``@``.
@@ -1088,12 +1089,12 @@ def fit_reml_em(
         Σ n_j² <= 5e6 and K <= 1000 (measured in ``bench/fit_speed.py``).
     scale_consistency : bool, default=True
         Divide robust-weighted squared residuals by κ_ν (module docstring); False gives the
-        literal DESIGN §5 step 4.
+        literal docs/estimator.md §3 step 4.
     dense_cov_max : int, default=3000
         Up to this many units the exact Cov(b̂) is returned (one more sparse product and a
-        dense inverse); beyond, Var(b̂) is the DESIGN §5.2 approximation.
+        dense inverse); beyond, Var(b̂) is the docs/estimator.md §5 approximation.
     outlier_weight : float, default=0.3
-        Rows with ω below this count as outliers (DESIGN §5.3).
+        Rows with ω below this count as outliers (docs/estimator.md §6).
     accelerate : bool, default=True
         SQUAREM-type extrapolation of log σ² when the iteration crawls (observed rate > 0.6);
         the fixed point is the same (module docstring).
@@ -1272,7 +1273,7 @@ def fit_reml_em(
         last_db = db
         dlog = np.abs(0.5 * np.log(sigma2_new / sigma2))
         dls = float(np.max(dlog))
-        # σ of a station in a bipartite component is not identified (DESIGN §3): only the
+        # σ of a station in a bipartite component is not identified (docs/model.md §3): only the
         # prior fixes the split and EM crawls along it, so the rate correction uses the
         # identified σ only and the others get the plain step test.
         dls_id = float(np.max(dlog, where=sigma_identified, initial=0.0))
@@ -1324,7 +1325,7 @@ def fit_reml_em(
     M, V, Pf = _event_estimate(d, w.P, num)
     if a4:
         # The A4 constraint held for the last b-step's weights; restore it exactly for the final
-        # ones by the one-constant shift per component that any anchor makes (DESIGN §3).
+        # ones by the one-constant shift per component that any anchor makes (docs/model.md §3).
         n_c = int(comp.max()) + 1
         ok = ev_comp_fit >= 0
         g_sum = np.bincount(ev_comp_fit[ok], weights=d.g_ev[ok], minlength=n_c)

@@ -1,4 +1,4 @@
-"""Seeded synthetic station networks with known truth (DESIGN §13), and the oracle estimate.
+"""Seeded synthetic station networks with known truth (docs/simulation.md), and the oracle estimate.
 
 The generator follows the simulation protocol of the design:
 
@@ -15,7 +15,7 @@ The generator follows the simulation protocol of the design:
   ``mar``: available (probability ``availability``) and epicentral distance below
   ``max_distance_km``; ``select_m``: available and M_j + b_i ≥ t_ij with
   t_ij = t0_i + 1.2 log10(Δ_ij / 10 km), t0_i ~ U(0.3, 0.9); ``censor``: available and
-  m_ij ≥ t_ij, available non-detections kept with t_ij (DESIGN §11); ``soft``: available and
+  m_ij ≥ t_ij, available non-detections kept with t_ij (docs/censoring.md); ``soft``: available and
   detected with probability Φ((m_ij − t_ij)/g), g = ``soft_sd``;
 
 - an optional bias step: one station's bias jumps by ``bias_step`` at ``bias_step_day``.
@@ -23,7 +23,7 @@ The generator follows the simulation protocol of the design:
 Every run is reproducible from its seed (numpy ``default_rng``); the seed is kept in the result.
 
 The oracle (:func:`oracle_estimate`) is GLS with the true biases and the true error covariance
-of the detecting stations (DESIGN §13); its variance is the smallest any unbiased linear
+of the detecting stations (docs/simulation.md); its variance is the smallest any unbiased linear
 combination of the detections can reach (Aitken 1935).
 """
 
@@ -46,7 +46,7 @@ Mode = Literal["mar", "select_m", "censor", "soft"]
 
 @dataclass(frozen=True, slots=True)
 class SimulationConfig:
-    """Parameters of one synthetic network (defaults: DESIGN §13, K = 40, one year).
+    """Parameters of one synthetic network (defaults: docs/simulation.md, K = 40, one year).
 
     Distances in km, magnitudes in magnitude units, times in days.
     """
@@ -122,7 +122,7 @@ class SimulatedNetwork:
 
 
 def simulate_network(config: SimulationConfig | None = None, *, seed: int = 0) -> SimulatedNetwork:
-    """Draw one synthetic network following DESIGN §13 (see module docstring).
+    """Draw one synthetic network following docs/simulation.md (see module docstring).
 
     Parameters
     ----------
@@ -244,7 +244,7 @@ def simulate_network(config: SimulationConfig | None = None, *, seed: int = 0) -
 def oracle_estimate(
     net: SimulatedNetwork,
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """GLS event magnitudes with the true biases and true error covariance (DESIGN §13).
+    """GLS event magnitudes with the true biases and true error covariance (docs/simulation.md).
 
     Uses detections only (clipped rows excluded) and the true per-row bias (including a bias
     step). Outlier terms are not part of the model covariance, as in the design's oracle.

@@ -3,20 +3,21 @@
 :class:`StationModel` is the nightly learner. ``fit`` runs, on the observations of one magnitude
 type:
 
-1. the rolling window and exponential forgetting (DESIGN §6, :mod:`fusion.model.forgetting`);
-2. the profiled REML-EM of DESIGN §5 (:func:`fusion.model.reml_em.fit_reml_em`), warm-started from a
-   previous model and anchored with continuity (:mod:`fusion.model.anchors`);
-3. correlated-pair detection by the leave-two-out test (DESIGN §9,
+1. the rolling window and exponential forgetting (docs/rolling-fit.md §1,
+   :mod:`fusion.model.forgetting`);
+2. the profiled REML-EM of docs/estimator.md §3 (:func:`fusion.model.reml_em.fit_reml_em`),
+   warm-started from a previous model and anchored with continuity (:mod:`fusion.model.anchors`);
+3. correlated-pair detection by the leave-two-out test (docs/pairs.md,
    :func:`fusion.model.pair_tests.detect_correlated_pairs`) and a refit with the flagged
    covariances;
-4. leave-one-station-out z scores (DESIGN §8.2, :func:`fusion.network.event_gls.event_gls`), a
-   CUSUM on
-   each station's time-ordered z (DESIGN §6, :func:`fusion.model.epochs.detect_bias_steps`), a split
-   of stepped stations into epochs and a refit, for at most ``max_epoch_rounds`` rounds;
-5. the global parametric-bootstrap test of independence (DESIGN §10,
+4. leave-one-station-out z scores (docs/network-magnitude.md §7,
+   :func:`fusion.network.event_gls.event_gls`), a CUSUM on
+   each station's time-ordered z (docs/epochs.md, :func:`fusion.model.epochs.detect_bias_steps`), a
+   split of stepped stations into epochs and a refit, for at most ``max_epoch_rounds`` rounds;
+5. the global parametric-bootstrap test of independence (docs/pairs.md §8,
    :func:`fusion.model.pair_tests.global_independence_test`), whose refits use a fast Gaussian
    closure warm-started at the final parameters;
-6. with ``use_nondetections``, the non-detections (DESIGN §11.2,
+6. with ``use_nondetections``, the non-detections (docs/censoring.md §4,
    :func:`fusion.model.censored_fit.refit_with_nondetections`): the joint censored fit warm-started
    from step 4's fit when thresholds are stored (or estimated), else optionally the safe-cell
    fallback. The hand-over then carries the censored estimates.
@@ -24,8 +25,8 @@ type:
 The result is handed on as :attr:`StationModel.parameters_`
 (:class:`fusion.model.parameters.StationParameters`); tables describe stations, pairs and epochs.
 
-Parameters follow the scikit-learn contract (STYLE 1–7): ``__init__`` only assigns, ``fit``
-validates and returns ``self``, learned attributes end in ``_`` and raise
+Parameters follow the scikit-learn contract (docs/conventions.md items 1–7): ``__init__`` only
+assigns, ``fit`` validates and returns ``self``, learned attributes end in ``_`` and raise
 :class:`~stations.errors.NotFittedError` before ``fit``; ``get_params``/``set_params`` come from
 :class:`fusion.model.estimator_base.ParamsMixin`.
 """
@@ -90,7 +91,7 @@ MAX_EPOCH_ROUNDS = 2
 
 
 def leave_one_out_z(obs: ObservationSet, fit: RemlEmFit) -> NDArray[np.float64]:
-    """Leave-one-station-out z of every row under a fitted model (DESIGN §8.2).
+    """Leave-one-station-out z of every row under a fitted model (docs/network-magnitude.md §7).
 
     z_ij = (m_ij − b̂_i − M̂_j^(−i))/sqrt(s_i² + V_j^(−i)) with s_i² = σ̃_i² + Var(b̂_i); the
     reference M̂^(−i) uses the other stations with their robust weights (s²/ω), the numerator
@@ -122,7 +123,7 @@ def leave_one_out_z(obs: ObservationSet, fit: RemlEmFit) -> NDArray[np.float64]:
 
 
 class StationModel(ParamsMixin):
-    """Learn station biases, error variances, correlated pairs and epochs (DESIGN §3–§10).
+    """Learn station biases, error variances, correlated pairs and epochs (docs/README.md).
 
     Parameters
     ----------
@@ -133,8 +134,8 @@ class StationModel(ParamsMixin):
     nu : float, default=4.0
         Student-t degrees of freedom of the robust weights.
     anchor : str, default="reference_set"
-        Level anchor (DESIGN §3, :mod:`fusion.model.anchors`): ``"reference_set"``, ``"median"``,
-        ``"reference_events"`` or ``"mean_magnitude"``.
+        Level anchor (docs/model.md §3, :mod:`fusion.model.anchors`): ``"reference_set"``,
+        ``"median"``, ``"reference_events"`` or ``"mean_magnitude"``.
     reference_stations : tuple of str, default=()
         Reference set R (``NET.STA.LOC``); empty means every station.
     reference_events : ReferenceEvents, optional
@@ -177,7 +178,7 @@ class StationModel(ParamsMixin):
     threshold_rounds : int, default=3
         Rounds of threshold estimation and joint fit.
     safe_cells_fallback : bool, default=False
-        Without any threshold, fit on safe cells only (DESIGN §11.2 fallback).
+        Without any threshold, fit on safe cells only (docs/censoring.md §8 fallback).
 
     Attributes
     ----------
@@ -326,7 +327,7 @@ class StationModel(ParamsMixin):
             safe_cells_fallback=cens.safe_cells_fallback,
         )
 
-    # -- validation (the constraint table of STYLE 3) ---------------------------------------
+    # -- validation (the constraint table of docs/conventions.md item 3) ---------------------------
     def _validate(self) -> None:
         name = type(self).__name__
 
@@ -413,7 +414,7 @@ class StationModel(ParamsMixin):
             latest origin time.
         previous : StationParameters, optional
             The previous model: warm start (matched by unit id, else by station) and anchor
-            continuity (DESIGN §6).
+            continuity (docs/rolling-fit.md §4).
 
         Returns
         -------
@@ -494,7 +495,7 @@ class StationModel(ParamsMixin):
         if self.detect_pairs and self.global_test_replicates > 0:
             global_test = self._global_test(units, fit, anchor, gamma, unit_station)
 
-        # Non-detections: joint censored fit (or the safe-cell fallback), DESIGN §11.2.
+        # Non-detections: joint censored fit (or the safe-cell fallback), docs/censoring.md §4.
         nondet = NondetectionOutcome.skipped(units, fit)
         if self.use_nondetections:
             nondet = self._nondetections(units, fit, anchor, gamma, unit_station)

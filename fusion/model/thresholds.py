@@ -1,4 +1,4 @@
-"""Station detection thresholds when the noise level is not stored (DESIGN §11.2, issue 7).
+"""Station detection thresholds when the noise level is not stored (docs/censoring.md §4, issue 7).
 
 The censored fit (:mod:`fusion.model.censored_fit`) needs, for every non-detection, the noise
 threshold t_ij on the station-magnitude scale. Where the store gives it (``noise_threshold``,
@@ -31,14 +31,14 @@ not enter the predictor), Δ the epicentral distance in km and Δ_ref = 10 km. T
   stations that see every event above the catalogue minimum get t̂ ≈ M_min + b̂ >= t: a
   conservative (too high) threshold, harmless for the safe-cell rule below.
 
-**Fallback without thresholds** (DESIGN §11.2): fit station parameters only on **safe cells**,
-detections with M̂_j^(−i) + b̂_i >= t̂_i(Δ) + 2σ̃_i (:func:`safe_cells`). Selecting on the
+**Fallback without thresholds** (docs/censoring.md §4): fit station parameters only on **safe
+cells**, detections with M̂_j^(−i) + b̂_i >= t̂_i(Δ) + 2σ̃_i (:func:`safe_cells`). Selecting on the
 leave-one-out estimate does not select on e_ij, and selecting on M̂ does not bias b̂ or σ̂
-(DESIGN §5.3); residual bias comes only from the other stations' censoring. Small events are
-then published with the flag ``likely-biased-high`` and their **expected detection bias**
+(docs/estimator.md §6); residual bias comes only from the other stations' censoring. Small events
+are then published with the flag ``likely-biased-high`` and their **expected detection bias**
 (:func:`expected_detection_bias`): with α_i = (M + b_i − t_i)/σ_i,
 E[e_i | detected] = σ_i λ(α_i), λ = φ/Φ (the truncated-normal mean, Johnson, Kotz &
-Balakrishnan 1994 [from memory]; CHECKS.md §7 check values), so a weighted mean of the
+Balakrishnan 1994 [from memory]; docs/check-values.md §7 check values), so a weighted mean of the
 detections is biased by Σ_i w_i σ_i λ(α_i); M is found by the fixed point
 M = M̂_det − bias(M) (the estimate minus its own expected bias), a few vectorized iterations.
 
@@ -597,9 +597,9 @@ def safe_cells(
 ) -> NDArray[np.bool_]:
     """Detections far enough above their station's threshold to be free of censoring.
 
-    A detection is safe when μ_ij = M̂_j^(−i) + b̂_i >= t̂_i(Δ_ij) + ``margin_sd`` σ̃_i (DESIGN
-    §11.2); at that level the station detects with probability Φ(margin_sd) (0.977 for 2), so
-    the reading is hardly selected on its error.
+    A detection is safe when μ_ij = M̂_j^(−i) + b̂_i >= t̂_i(Δ_ij) + ``margin_sd`` σ̃_i
+    (docs/censoring.md §8); at that level the station detects with probability Φ(margin_sd) (0.977
+    for 2), so the reading is hardly selected on its error.
 
     Parameters
     ----------
@@ -656,9 +656,9 @@ def expected_detection_bias(
         Fixed-point iterations M ← M̂_det − bias(M) (each vectorized over all events). The
         fixed point exists when M̂_det lies above the weighted thresholds Σ w (t − b); an event
         whose only detection sits at its threshold has none (its bias is not bounded by the
-        data), and the value after ``n_iter`` iterations is then a lower bound. On the DESIGN
-        §13 censor simulation five iterations predict the detected-only bias per magnitude bin
-        within 0.012 (tests/fusion/model/test_thresholds.py).
+        data), and the value after ``n_iter`` iterations is then a lower bound. On the censor
+        simulation (docs/simulation.md §2) five iterations predict the detected-only bias per
+        magnitude bin within 0.012 (tests/fusion/model/test_thresholds.py).
 
     Returns
     -------

@@ -1,9 +1,9 @@
-"""Label-free validation of the station model and the network estimate (DESIGN §12).
+"""Label-free validation of the station model and the network estimate (docs/validation.md).
 
 No true event magnitude is known, so the checks compare the model with itself on data it was not
 fitted to, or with the distributions it implies.
 
-Held-out station prediction [derived, DESIGN §12]
+Held-out station prediction [derived, docs/validation.md]
 -------------------------------------------------
 Let M̃_j^(−i) be any network estimate built without station i, with parameters fitted on an
 earlier, disjoint period. If e_ij is independent of the other stations' errors,
@@ -15,8 +15,8 @@ so the held-out mean squared error ranks methods by their true MSE up to a const
 depend on the method. :func:`held_out_prediction` predicts every evaluation reading of an event
 with n_j ≥ 3 stations by b̂_i + M̃_j^(−i) for four methods,
 
-- ``gls``: GLS with the fitted parameters (Aitken 1935; DESIGN §8.1), leave-one-out from
-  :func:`fusion.network.event_gls.event_gls`;
+- ``gls``: GLS with the fitted parameters (Aitken 1935; docs/network-magnitude.md §2), leave-one-out
+  from :func:`fusion.network.event_gls.event_gls`;
 - ``bias_corrected_mean``: mean of m_kj − b̂_k over the other stations;
 - ``plain_mean``: mean of m_kj over the other stations (the classical network magnitude);
 - ``median``: median of m_kj over the other stations,
@@ -36,7 +36,7 @@ same b]. :func:`split_half_sigma_check` compares the two halves' σ̂²: their r
 F(d_odd, d_even) under a constant σ [from memory / derived]. :func:`scatter_checks` tests
 χ²_j/(n_j − 1) against χ²_{n_j−1}/(n_j − 1) (Kolmogorov–Smirnov on the probability integral
 transform) and reports the Birge ratio and the residual skewness by M̂ bin (censoring makes the
-residuals of small events skewed, DESIGN §11; Ringdal 1976).
+residuals of small events skewed, docs/censoring.md §1; Ringdal 1976).
 
 References
 ----------
@@ -132,7 +132,7 @@ class SplitHalfResult:
         Pearson correlation of the two bias vectors over stations fitted in both halves.
     expected_correlation : float
         τ_b²/sqrt((τ_b² + mean Var b̂_a)(τ_b² + mean Var b̂_b)); equals τ_b²/(τ_b² + Var b̂)
-        for equal halves (DESIGN §12).
+        for equal halves (docs/validation.md).
     tau_b2 : float
         The τ_b² used (magnitude units²).
     n_stations : int
@@ -278,7 +278,7 @@ def held_out_prediction(
     level: float = 0.95,
     random_state: int | np.random.Generator | None = None,
 ) -> HeldOutResult:
-    """Score network estimates by predicting each held-out station reading (DESIGN §12).
+    """Score network estimates by predicting each held-out station reading (docs/validation.md).
 
     Parameters
     ----------
@@ -463,8 +463,8 @@ def split_half_agreement(
     bias_var_a, bias_var_b : array_like, shape (K,)
         Var(b̂_i) of each half (magnitude units²).
     tau_b2 : float, optional
-        Spread of the true biases (the fit's τ_b², DESIGN §5.2). If omitted, estimated by the
-        covariance of the two halves (their errors are independent), floored at 0.
+        Spread of the true biases (the fit's τ_b², docs/estimator.md §5). If omitted, estimated by
+        the covariance of the two halves (their errors are independent), floored at 0.
 
     Returns
     -------
@@ -503,14 +503,14 @@ def split_half_agreement(
 def split_half_sigma_check(
     sigma2_a: ArrayLike, sigma2_b: ArrayLike, dof_a: ArrayLike, dof_b: ArrayLike
 ) -> tuple[float, float]:
-    """KS test of σ̂²_a/σ̂²_b against F(d_a, d_b) across stations (DESIGN §12).
+    """KS test of σ̂²_a/σ̂²_b against F(d_a, d_b) across stations (docs/validation.md).
 
     Parameters
     ----------
     sigma2_a, sigma2_b : array_like, shape (K,)
         Raw (unmoderated) variance estimates of the two halves.
     dof_a, dof_b : array_like, shape (K,)
-        Their degrees of freedom d_i (DESIGN §5.2); stations with d ≤ 0 or NaN are skipped.
+        Their degrees of freedom d_i (docs/estimator.md §5); stations with d ≤ 0 or NaN are skipped.
 
     Returns
     -------
@@ -520,7 +520,8 @@ def split_half_sigma_check(
     -----
     Under a constant σ_i and Gaussian errors d σ̂²/σ² ~ χ²_d, so the ratio of two independent
     halves is F(d_a, d_b) [from memory / derived]; the probability integral transform of each
-    station's ratio is U(0, 1). Moderated variances (DESIGN §5.2) are shrunk and do not follow F.
+    station's ratio is U(0, 1). Moderated variances (docs/estimator.md §5) are shrunk and do not
+    follow F.
     """
     s_a = np.asarray(sigma2_a, dtype=np.float64)
     s_b = np.asarray(sigma2_b, dtype=np.float64)
@@ -558,7 +559,7 @@ def scatter_checks(
     pairs : PairCovariance, optional
         Flagged pairs: χ²_j = r'Σ_j⁻¹r with their 2×2 blocks.
     bias_var : array_like, shape (K,), optional
-        Added to σ̂² (s² = σ̂² + Var b̂, DESIGN §8.1).
+        Added to σ̂² (s² = σ̂² + Var b̂, docs/network-magnitude.md §2).
     bins : int or array_like, default=5
         Number of equal-count M̂ bins, or bin edges (magnitude units).
 
@@ -568,7 +569,7 @@ def scatter_checks(
 
     Notes
     -----
-    Under the model with Gaussian errors, χ²_j ~ χ²_{n_j−1} (DESIGN §8.1), so
+    Under the model with Gaussian errors, χ²_j ~ χ²_{n_j−1} (docs/network-magnitude.md §2), so
     u_j = F_{χ²_{n_j−1}}(χ²_j) is U(0, 1) whatever n_j; the KS test pools all events. The
     standardised residual is r_ij/sqrt(s_i² − V_j) (E r² = s²(1 − w) in the diagonal case,
     [derived]; approximate inside a flagged pair).

@@ -4,7 +4,7 @@ A station that was operating but did not detect an event says the station magnit
 been below its noise threshold t_ij; a clipped record says it was above the clipped value u_ij.
 Averaging only the detections is then biased high for small events (Ringdal 1976). For one event
 with detections D, non-detections C and clipped readings U the log-likelihood of the event
-magnitude M is (DESIGN §11.1)
+magnitude M is (docs/censoring.md §3)
 
     ℓ(M) = Σ_D [log φ((y_i − M)/σ_i) − log σ_i] + Σ_C log Φ((t_i − M)/s_i)
            + Σ_U log[1 − Φ((u_i − M)/σ_i)],
@@ -69,7 +69,7 @@ __all__ = [
     "truncated_normal_moments",
 ]
 
-#: Newton steps are clipped to this many magnitude units (DESIGN §11.1).
+#: Newton steps are clipped to this many magnitude units (docs/censoring.md §3).
 MAX_STEP: Final = 1.0
 
 
@@ -119,7 +119,7 @@ def truncated_normal_moments(
         E[x | x < upper] = mean − sd λ,     Var[x | x < upper] = sd² (1 − αλ − λ²),
 
     and the mirror image for a lower bound (Johnson, Kotz & Balakrishnan 1994, ch. 13). These are
-    the censored-cell expectations of the station step of the joint fit (DESIGN §11.2).
+    the censored-cell expectations of the station step of the joint fit (docs/censoring.md §4).
 
     Parameters
     ----------
@@ -151,7 +151,7 @@ def truncated_normal_moments(
 
 
 def nondetection_scale(variance: ArrayLike, soft_sd: float = 0.0) -> NDArray[np.float64]:
-    """s = sqrt(σ² + g²), the scale of a non-detection term (DESIGN §11.1).
+    """s = sqrt(σ² + g²), the scale of a non-detection term (docs/censoring.md §3).
 
     Parameters
     ----------
@@ -179,8 +179,8 @@ def detection_probability(
 
     Notes
     -----
-    DESIGN §11.2 keeps in the censored set only non-detections with a probability above 0.01:
-    the others add log Φ(z) ≈ 0 to ℓ and cost work.
+    docs/censoring.md §4 keeps in the censored set only non-detections with a probability above
+    0.01: the others add log Φ(z) ≈ 0 to ℓ and cost work.
     """
     z = (np.asarray(magnitude, dtype=np.float64) - np.asarray(threshold, dtype=np.float64)) / (
         np.asarray(scale, dtype=np.float64)
@@ -437,13 +437,13 @@ def fit_censored(
     ----------
     data : CensoredEventData
     start : array_like of float, shape (N,)
-        Starting magnitudes, normally the GLS estimates of the detections (DESIGN §11.1). Events
-        with a non-finite start are not fitted (NaN out).
+        Starting magnitudes, normally the GLS estimates of the detections (docs/censoring.md §3).
+        Events with a non-finite start are not fitted (NaN out).
     max_iter : int, default=20
-        Newton steps at most. Events started near their maximum take 3–6 (DESIGN §11.1); an
+        Newton steps at most. Events started near their maximum take 3–6 (docs/censoring.md §3); an
         event whose one detection lies far above its non-detections' thresholds starts far
         off, where ℓ is nearly quadratic only asymptotically and each step undershoots; such
-        events take up to about 10 (measured on the DESIGN §13 censor simulation).
+        events take up to about 10 (measured on the docs/simulation.md censor simulation).
     tol : float, default=1e-7
         An event has converged when its Newton step is below this (magnitude units).
 

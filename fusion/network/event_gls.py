@@ -1,13 +1,14 @@
 """Per-event GLS sums and leave-one-station-out quantities, vectorized over all events.
 
 Given bias-corrected readings y_ij = m_ij − b_i and row variances s_i² (error variance over any
-robust weight, plus the bias variance where wanted), the GLS event estimate is (DESIGN §8.1)
+robust weight, plus the bias variance where wanted), the GLS event estimate is
+(docs/network-magnitude.md §2)
 
     P_j = Σ_i a_i,   M̂_j = Σ_i a_i y_ij / P_j,   V_j = 1/P_j,   w_ij = a_i / P_j,
 
 with a = Σ_j⁻¹1 (:func:`fusion.network.gls_blocks.precision_row_weights`; a_i = 1/s_i² without
 pairs).
-Leaving station i out costs O(1) per row from the event sums (DESIGN §8.2):
+Leaving station i out costs O(1) per row from the event sums (docs/network-magnitude.md §7):
 
     P^(−i) = P_j − a_i,   M̂^(−i) = (P_j M̂_j − a_i y_ij)/P^(−i),   V^(−i) = 1/P^(−i),
     influence_ij = M̂_j − M̂^(−i),   z_ij = (y_ij − M̂^(−i)) / sqrt(s_i² + V^(−i)).

@@ -1,8 +1,9 @@
 """Row weights Σ_j⁻¹1 for event covariance matrices that are diagonal apart from 2×2 blocks.
 
 For event j the station-error covariance is Σ_j = diag(s_i²) plus c_kl at (k, l) and (l, k) for
-every flagged pair (k, l) whose both stations observed j (DESIGN §2, §8.1). Stations belong to at
-most one flagged pair (a partner map), so Σ_j is block diagonal with 1×1 and 2×2 blocks and
+every flagged pair (k, l) whose both stations observed j (docs/model.md §2;
+docs/network-magnitude.md §2). Stations belong to at most one flagged pair (a partner map), so Σ_j
+is block diagonal with 1×1 and 2×2 blocks and
 
     (Σ_j⁻¹1)_i = 1/s_i²                                      (unpaired row)
     (Σ_j⁻¹1)_k = (s_l² − c_kl) / (s_k² s_l² − c_kl²)          (row k of a present pair, partner l)
@@ -24,7 +25,7 @@ __all__ = ["PairCovariance", "pair_partner_rows", "precision_row_weights"]
 class PairCovariance:
     """Flagged pairs as arrays: stations ``k[p]``, ``l[p]`` and error covariance ``c[p]``.
 
-    Each station may appear in at most one pair (DESIGN §9 builds partner maps that way).
+    Each station may appear in at most one pair (docs/pairs.md builds partner maps that way).
 
     Parameters
     ----------
@@ -121,7 +122,7 @@ def precision_row_weights(
     -------
     ndarray of float, shape (nnz,)
         Unnormalised GLS weights; can be negative for a strongly correlated pair whose partner
-        is much more precise (DESIGN §8.1, worked example E3).
+        is much more precise (docs/network-magnitude.md §2, worked example E3).
     """
     a = 1.0 / s2
     if pairs is None or pairs.n_pairs == 0:

@@ -1,7 +1,8 @@
 """Network magnitudes for a whole :class:`~fusion.observations.ObservationSet` in one pass.
 
 For each event j the station magnitudes m_ij (one magnitude type) are corrected by the learned
-station biases b̂_i and combined by generalised least squares (Aitken 1935; DESIGN §8.1):
+station biases b̂_i and combined by generalised least squares (Aitken 1935;
+docs/network-magnitude.md §2):
 
     s_i² = σ̃_i²/ω_ij + Var(b̂_i),     Σ_j = diag(s²) + c_kl for flagged pairs (2×2 blocks),
     w = Σ_j⁻¹1 / (1'Σ_j⁻¹1),          M̂_j = w'(m − b̂),          SE_j = 1/sqrt(1'Σ_j⁻¹1).
@@ -11,12 +12,12 @@ weights of an event's detections sum to 1 and say how much each corrected statio
 moves M̂_j (∂M̂_j/∂m_ij). ``residual`` is the corrected station magnitude minus the event's
 reported magnitude (QuakeML's station-magnitude residual, after the station correction).
 
-Rules (DESIGN §8):
+Rules (docs/network-magnitude.md):
 
 - **Robust weights.** Events with n_j ≥ max(3, ``robust_min_stations``) detections get
   Student-t weights ω = min(1, (ν + 1)/(ν + u²)) from the leave-one-station-out (LOSO) residual
   u_ij = (m_ij − b̂_i − M̂_j^(−i))/sqrt(σ̃_i² + Var b̂_i + V_j^(−i)) (Lange, Little & Taylor 1989;
-  DESIGN §5.3). The iteration starts from the weighted median (the t likelihood can be
+  docs/estimator.md §6). The iteration starts from the weighted median (the t likelihood can be
   multimodal for small n_j) and repeats GLS → LOSO → ω until M̂_j moves less than
   ``robust_tol``, for all events at once. The weights are capped at 1 so that they only
   down-weight: an inlier keeps its model variance σ̃_i² and the SE keeps its meaning under the
@@ -28,30 +29,31 @@ Rules (DESIGN §8):
 - **Negative weights** come only from the capped pair covariances (worked example E3) and flag
   ``negative-weight``.
 - **Unknown stations** (not in the model, or outside every epoch) get b̂ = 0 with
-  Var b̂ = τ_b² and σ̃² = s0² (DESIGN §5.2) and flag ``unknown-station``.
+  Var b̂ = τ_b² and σ̃² = s0² (docs/estimator.md §5) and flag ``unknown-station``.
 
 Diagnostics per event: χ²_j = r'Σ_j⁻¹r (n_j − 1 degrees of freedom), the Birge ratio
 R_B = sqrt(χ²_j/(n_j − 1)) (Birge 1932) with SE·max(1, R_B) beside the SE, n_eff = 1/Σw², the
 weight share of prior-dominated (and unknown) stations, the largest |influence| M̂_j − M̂_j^(−i)
 and its station, the largest |z| with z_ij = (y_ij − M̂^(−i))/sqrt(σ̃_i² + Var b̂_i + V^(−i))
-(DESIGN §8.2), and for n_j ≥ 4 the jackknife SE, SE_jack² = ((n − 1)/n) Σ_i (M̂^(−i) − M̄^(−·))²
-(Efron & Tibshirani 1993, ch. 11). The plain mean and the median of the raw (uncorrected)
-detections are reported beside M̂ with the difference M̂ − mean (DESIGN §8.3).
+(docs/network-magnitude.md §7), and for n_j ≥ 4 the jackknife SE, SE_jack² = ((n − 1)/n) Σ_i
+(M̂^(−i) − M̄^(−·))² (Efron & Tibshirani 1993, ch. 11). The plain mean and the median of the raw
+(uncorrected) detections are reported beside M̂ with the difference M̂ − mean
+(docs/network-magnitude.md §8).
 
 With ``use_nondetections`` the events holding informative non-detections (noise threshold known
 and detection probability Φ((M̂ + b̂ − t)/s) above ``min_detection_probability``) or clipped
 readings are re-estimated by the censored likelihood of :mod:`fusion.network.censoring`, started
 from
-the GLS value (DESIGN §11.1). Their ``weight`` is then ∂M̂/∂v for the row's value v (magnitude,
-threshold or clipped bound), which again sums to 1 over the event's rows.
+the GLS value (docs/censoring.md §3). Their ``weight`` is then ∂M̂/∂v for the row's value v
+(magnitude, threshold or clipped bound), which again sums to 1 over the event's rows.
 
-Edge cases (STYLE item 6): an event with no usable detection (no row, only non-detections, or
-only non-finite magnitudes) gets NaN and flag ``no-detection``. Identical values give M̂ equal
-to them, χ² = 0, R_B = 0 and the model SE. A detected row with a NaN or infinite magnitude is
-handled by ``nan_policy``: ``"omit"`` drops it (row and event flag ``invalid-magnitude``),
-``"propagate"`` makes its event's magnitude NaN (same flag), ``"raise"`` raises
-:class:`~stations.errors.DomainError` naming the row. Clipped detections are lower bounds: they
-never enter the GLS and count only in the censored likelihood.
+Edge cases (docs/conventions.md item 6): an event with no usable detection (no row, only
+non-detections, or only non-finite magnitudes) gets NaN and flag ``no-detection``. Identical values
+give M̂ equal to them, χ² = 0, R_B = 0 and the model SE. A detected row with a NaN or infinite
+magnitude is handled by ``nan_policy``: ``"omit"`` drops it (row and event flag
+``invalid-magnitude``), ``"propagate"`` makes its event's magnitude NaN (same flag), ``"raise"``
+raises :class:`~stations.errors.DomainError` naming the row. Clipped detections are lower bounds:
+they never enter the GLS and count only in the censored likelihood.
 
 References
 ----------
@@ -222,7 +224,7 @@ class NetworkEstimate:
         M̂_j (magnitude units); NaN when the event has no usable detection.
     uncertainty : float
         Standard error (1σ) of ``magnitude``, magnitude units; the station-calibration (anchor)
-        uncertainty is not included (DESIGN §3, §8.1).
+        uncertainty is not included (docs/model.md §3; docs/network-magnitude.md §2).
     confidence_level : float
         Level of the interval reported in the event table, as a fraction (0.68 = 68 %).
     n_stations : int
@@ -370,7 +372,7 @@ def _split(text: str) -> tuple[str, ...]:
 
 
 # ---------------------------------------------------------------------------------------------
-# Parameter checks (STYLE item 3)
+# Parameter checks (docs/conventions.md item 3)
 # ---------------------------------------------------------------------------------------------
 
 
@@ -644,9 +646,9 @@ def _loo_t_weights(
 
     The GLS and leave-one-(block-)out formulas are those of
     :func:`fusion.network.event_gls.event_gls`
-    (DESIGN §8.1–8.2), written with in-place buffers because this runs once per iteration on
-    every robust row. Returns the event magnitudes (shape (n_events,)) and the new weights
-    (``omega`` is overwritten).
+    (docs/network-magnitude.md §2, §7), written with in-place buffers because this runs once per
+    iteration on every robust row. Returns the event magnitudes (shape (n_events,)) and the new
+    weights (``omega`` is overwritten).
     """
     buf = np.divide(sigma2, omega)
     buf += bias_var
@@ -836,7 +838,7 @@ def fuse_events(
     robust_min_stations : int, default=3
         Student-t weights only for events with at least max(3, this) detections.
     nu : float, default=4.0
-        Degrees of freedom ν of the Student-t weights (DESIGN §5.3).
+        Degrees of freedom ν of the Student-t weights (docs/estimator.md §6).
     inconsistent_z : float, default=3.0
         Two-station events with |z| above this are flagged ``inconsistent``.
     outlier_weight : float, default=0.3
@@ -850,9 +852,10 @@ def fuse_events(
         Non-detections whose station would have detected the GLS event with at most this
         probability are left out (they carry almost no information).
     gr_b_value : float, optional
-        Gutenberg–Richter b value; if given, ``gr_posterior_mean`` = M̂ − b ln(10)·SE² (DESIGN
-        §8.3, E6), else NaN. That column is never the magnitude to publish and must never be
-        fed to a b-value fit: it already contains the G–R prior.
+        Gutenberg–Richter b value; if given, ``gr_posterior_mean`` = M̂ − b ln(10)·SE²
+        (docs/network-magnitude.md §8, worked example E6), else NaN. That column is never the
+        magnitude to publish and must never be fed to a b-value fit: it already contains the G–R
+        prior.
     nan_policy : {'omit', 'propagate', 'raise'}, default='omit'
         What a detected row with a NaN or infinite magnitude does (see module docstring).
     robust_max_iter : int, default=100

@@ -4,15 +4,15 @@ network magnitude with its interval, and the plain mean, as PNG or as a self-con
 Left panel: corrected station magnitudes m − b̂ against epicentral distance (or, without
 distances, in order of size), each with the interval ± z·s_i at the event's confidence level,
 z = Φ⁻¹((1 + level)/2); marker **area proportional to the station's weight** in the network
-magnitude (hollow markers for negative weights, DESIGN §8.1 E3); raw station magnitudes as grey
-dots; non-detections as triangles at their noise threshold (corrected like the readings);
-outliers (robust weight below 0.3) as crosses. The network magnitude is the black line with
-its interval shaded; the plain mean of the raw station magnitudes is the dashed orange line.
+magnitude (hollow markers for negative weights, docs/network-magnitude.md §2 E3); raw station
+magnitudes as grey dots; non-detections as triangles at their noise threshold (corrected like the
+readings); outliers (robust weight below 0.3) as crosses. The network magnitude is the black line
+with its interval shaded; the plain mean of the raw station magnitudes is the dashed orange line.
 Right panel (when coordinates are known): the stations on a longitude-latitude plot, area again
 proportional to weight, up-triangles for positive and down-triangles for negative residuals.
 
 Station intervals: s_i = sqrt(σ̃_i² + SE(b̂_i)²) from the station table when given (the model
-SD of a corrected station magnitude as a measurement of M, DESIGN §8.1); otherwise
+SD of a corrected station magnitude as a measurement of M, docs/network-magnitude.md §2); otherwise
 s_i = SE/sqrt(w_i), which is exact for the diagonal GLS (w_i = s_i⁻²/Σ_k s_k⁻² and
 SE² = 1/Σ_k s_k⁻², so SE²/w_i = s_i²) and includes the robust down-weighting; rows with
 w_i <= 0 then get no interval.

@@ -99,7 +99,7 @@ class JoinedRows:
         an event with at least two stations (with one station the residual is 0 by
         construction), and not selection-prone: where the reading's noise threshold t is
         known, the network magnitude plus the station bias is at least 2σ above it (a reading
-        near its threshold was reported because its error was high; DESIGN §11).
+        near its threshold was reported because its error was high; docs/censoring.md §9).
     order : ndarray of int
         Row indices sorted by unit (stable), and ``unit_start`` the first position of each
         unit in it (length K + 1), for per-unit slices without a scan.
@@ -176,7 +176,8 @@ def join_rows(inputs: ReportInputs) -> JoinedRows:
     # Detections that were likely only because their error was high (the network magnitude
     # plus the station bias within 2 sigma of the reading's noise threshold) have residuals
     # biased upward by the selection, not by the station: leave them out of the station
-    # statistics (the "safe cells" of DESIGN §11, fallback). Unknown thresholds keep the row.
+    # statistics (the "safe cells" of docs/censoring.md §9, fallback). Unknown thresholds keep the
+    # row.
     threshold = _column(co, "threshold", np.nan)
     u_safe = np.where(unit >= 0, unit, 0)
     bias = _column(st, "bias", 0.0)[u_safe] if K else np.zeros(len(co))

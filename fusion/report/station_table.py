@@ -43,7 +43,7 @@ drift_alarms          'change → alarm (up/down)' dates, '; '-joined
 Trend t ratios and the |t| > 3 rule: :mod:`fusion.report.trends`. ``residual-offset`` uses the
 same rule on the mean residual: under the model each residual has mean 0, so a mean residual
 with |t| > 3 says the bias has moved since the fit (or the unit's window residuals are skewed by
-detection, DESIGN §11).
+detection, docs/censoring.md §9).
 
 The Parquet file is written through :data:`STATION_REPORT_SCHEMA` (units in field metadata,
 schema name and version in the file's key-value metadata).
@@ -299,7 +299,7 @@ def station_reliability_table(
     min_trend_rows : int, default=20
         Fewer usable readings give no trend (NaN) and no trend flag.
     outlier_weight : float, default=0.3
-        A reading with robust weight below this is an outlier (DESIGN §5.3).
+        A reading with robust weight below this is an outlier (docs/estimator.md §6).
     outlier_rate_alert : float, default=0.02
         ``many-outliers`` above this window outlier rate. Under the Gaussian model a reading
         gets ω < 0.3 (ν = 4) only beyond |u| ≈ 3.56, probability 0.04 %; the design's

@@ -4,7 +4,7 @@ A station magnitude corrected by a constant bias should leave residuals with no 
 epicentral distance or against event magnitude. A slope against log10(distance) points to a
 distance-correction (−log A0) problem at that station; a slope against magnitude points to
 saturation or clipping of large amplitudes (flattening at high M), or to a detection-threshold
-effect at small M (DESIGN §11).
+effect at small M (docs/censoring.md §1).
 
 Per group g the model is y = a_g + b_g x + e with Var e = s_g²/w (weighted least squares,
 w = robust weight). With weighted means x̄, ȳ:

@@ -479,7 +479,7 @@ def _to_us(value: datetime | None) -> int | None:
 
 
 def frame_to_table(frame: pd.DataFrame, schema: pa.Schema, *, where: str) -> pa.Table:
-    """Convert ``frame`` to an Arrow table of exactly ``schema`` (STYLE item 14).
+    """Convert ``frame`` to an Arrow table of exactly ``schema`` (docs/conventions.md item 14).
 
     Each column is converted on its own and cast to the declared type (NaN becomes null);
     categorical columns are decoded. Columns of ``frame`` not in ``schema`` are left out.
@@ -536,7 +536,8 @@ def _set_columns(table: pa.Table, values: dict[str, Any], schema: pa.Schema) -> 
 def _write_parquet(
     path: Path, table: pa.Table, schema: pa.Schema, *, codec: str, row_group_size: int
 ) -> None:
-    """Write ``table`` through ``schema`` (STYLE item 14) into memory, then to ``path`` with
+    """Write ``table`` through ``schema`` (docs/conventions.md item 14) into memory, then to
+    ``path`` with
     :func:`stations.store.atomic.write_bytes_atomic` (temporary name, fsync, rename)."""
     sink = pa.BufferOutputStream()
     with pq.ParquetWriter(sink, schema, compression=codec, write_statistics=True) as writer:

@@ -7,7 +7,7 @@ is adopted and everything is fused again; one event is explained; the station re
 written. Because the demo's truth is known, the fused magnitudes are scored against it, beside
 the plain mean and the median of the same station magnitudes.
 
-The anchor (DESIGN §3) fixes the common level of all magnitudes: without reference events no
+The anchor (docs/model.md §3) fixes the common level of all magnitudes: without reference events no
 method can know it, so the scores are given after removing one common offset per method (the
 median error), and the offset itself is printed.
 """
@@ -46,7 +46,7 @@ class DemoResult:
 
 
 def oracle_parameters() -> StationParameters:
-    """The demo's true station parameters as a model: the oracle of DESIGN §13.
+    """The demo's true station parameters as a model: the oracle of docs/simulation.md.
 
     True biases (with the stepped station split into its two epochs), true error SDs, the true
     correlated pairs with c = ρ σ_k σ_l, and no bias uncertainty. Fusing with it (censored

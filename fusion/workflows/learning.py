@@ -2,8 +2,8 @@
 
 :func:`learn_candidate` reads the rolling window of one magnitude type from the store, fits a
 :class:`~fusion.model.station_model.StationModel` warm-started from the active model (anchor
-continuity, DESIGN §6), and saves the result as a new, not yet adopted, model version with
-everything needed to reproduce and audit it: window, as-of time, configuration hash, data
+continuity, docs/rolling-fit.md §4), and saves the result as a new, not yet adopted, model version
+with everything needed to reproduce and audit it: window, as-of time, configuration hash, data
 fingerprint of the store files read, code version, creation time and anchor.
 """
 

@@ -9,8 +9,8 @@
    the epicentral one and the depth; given values are never overwritten;
 2. computes the value of every row that has an ``amplitude`` but no value (or every row with an
    amplitude, with ``recompute``): a detection gets ``magnitude``, a non-detection
-   (``detected`` false) gets ``noise_threshold`` (its amplitude is the pre-event noise, DESIGN
-   §2), both through the formula of the row's ``magnitude_type``:
+   (``detected`` false) gets ``noise_threshold`` (its amplitude is the pre-event noise,
+   docs/model.md §2.1), both through the formula of the row's ``magnitude_type``:
 
    ============ ========================================== ===================================
    type         formula (:mod:`stations.formulas`)         inputs taken from the row

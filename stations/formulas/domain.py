@@ -9,7 +9,7 @@ and for each input a reason, empty inside the validity domain. Two kinds of reas
 - **not computable**: a missing or non-positive input, or a table look-up outside the table;
   :attr:`Evaluation.magnitude` is NaN there.
 
-:meth:`Evaluation.resolve` applies a :data:`DomainPolicy` (STYLE item 8):
+:meth:`Evaluation.resolve` applies a :data:`DomainPolicy` (docs/conventions.md item 8):
 
 =========== ==================================================================================
 policy      result

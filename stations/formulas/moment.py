@@ -7,7 +7,7 @@ form                    equation (M0 in N·m)         status
 (default)                                            (verified); the constant 9.1 is from memory
 ``HK79``                (2/3) log10(M0 · 1e7) - 10.7 Hanks & Kanamori (1979) with M0 in dyne·cm,
                         = (2/3) (log10 M0 - 9.05)    as pyrocko's ``moment_to_magnitude``
-                                                     (CHECKS.md §5, verified)
+                                                     (docs/check-values.md §5, verified)
 ======================= ============================ =============================================
 
 The two differ by the constant (2/3)·0.05 = 0.0333 at every moment.

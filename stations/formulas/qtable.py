@@ -12,8 +12,8 @@ name             rows
 ================ ============================================================================
 
 Both transcribe the values J. C. Lahr's page "Computing body-wave (mb) magnitude" lists for
-the G&R table and chart (verified, CHECKS.md §2); the two renderings differ by up to 0.1 at
-h = 0. No machine-readable Q grid was found in a general library, and no further values are
+the G&R table and chart (verified, docs/check-values.md §2); the two renderings differ by up to 0.1
+at h = 0. No machine-readable Q grid was found in a general library, and no further values are
 sourced, so nothing else is shipped.
 
 Interpolation: bilinear in (Δ, h), i.e. linear in Δ between the tabulated distances and linear

@@ -2,8 +2,8 @@
 
 A format is one module ``stations/readers/<format>.py`` with a strict, cheap detector
 ``is_<format>(path) -> bool`` and a reader ``read_<format>(path, *, magnitude_range, ...) ->
-ReadResult`` (ObsPy's plug-in shape, STYLE items 9-10). :mod:`stations.readers` keeps the one
-registry and the dispatcher.
+ReadResult`` (ObsPy's plug-in shape, docs/conventions.md items 9-10). :mod:`stations.readers` keeps
+the one registry and the dispatcher.
 """
 
 from __future__ import annotations

@@ -3,8 +3,8 @@
 The file must hold every column of :data:`stations.schema.INPUT_COLUMNS` with the Arrow type of
 :data:`stations.schema.RECORD_SCHEMA`; extra columns (the store's ``batch_id``,
 ``ingest_time``, ``revision``) are ignored. The schema is checked with ``pq.read_schema`` before
-any data is read (STYLE item 14). A few encodings that hold exactly the same values are
-accepted and cast: ``large_string``/``string_view``/dictionary-encoded text for ``string``
+any data is read (docs/conventions.md item 14). A few encodings that hold exactly the same values
+are accepted and cast: ``large_string``/``string_view``/dictionary-encoded text for ``string``
 (pandas writes those), a timestamp in s, ms, us or ns with time zone UTC for ``origin_time``
 (ns only if no value has sub-microsecond digits), and the ``null`` type for an all-empty column.
 

@@ -58,8 +58,8 @@ def write_parquet_atomic(
 ) -> int:
     """Write ``table`` through ``schema`` to ``path`` atomically; return the file size in bytes.
 
-    The writer is opened with the declared schema (STYLE item 14), so its key-value metadata
-    (schema name and version) and the column types are exactly those of ``schema``.
+    The writer is opened with the declared schema (docs/conventions.md item 14), so its key-value
+    metadata (schema name and version) and the column types are exactly those of ``schema``.
     """
     tmp = path.with_name(path.name + TMP_SUFFIX)
     with pq.ParquetWriter(tmp, schema, compression=COMPRESSION, write_statistics=True) as writer:

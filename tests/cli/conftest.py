@@ -30,7 +30,7 @@ SHARED_DATA = DATA_DIR
 #: The advisory caution as the commands print it on stderr.
 ADVISORY_LINE = ADVISORY + "\n"
 
-#: A configuration for fast tests: the global independence test (DESIGN §10) with 20 bootstrap
+#: A configuration for fast tests: the global independence test (docs/pairs.md §8) with 20 bootstrap
 #: replicates instead of the shipped 200 keeps ``learn`` near one second on a quarter of the demo
 #: year. Every other key keeps its shipped value.
 FAST_CONFIG = "[pairs]\nglobal_test_replicates = 20\n"

@@ -49,7 +49,7 @@ def test_compute_then_recompute_with_another_distance_correction(tmp_path: Path)
         .scan(magnitude_type="ML")
         .sort_values(["event_id", "station_id"])
     )
-    # CHECKS.md §4 table, IASPEI column (A_nm = A_mm 1e6/2080): 1 mm at 100 km -> 3.0009,
+    # docs/check-values.md §4 table, IASPEI column (A_nm = A_mm 1e6/2080): 1 mm at 100 km -> 3.0009,
     # 1 mm at 10 km -> 1.7208, 10 mm at 300 km -> 4.9085 (computed from the IASPEI formula).
     assert rows["magnitude"].tolist() == pytest.approx([3.0009, 1.7208, 4.9085], abs=1e-4)
     assert set(rows["formula"]) == {"ML IASPEI-2013 HB87"}
@@ -67,8 +67,8 @@ def test_compute_then_recompute_with_another_distance_correction(tmp_path: Path)
     assert "3 changed (new revision)" in result.stdout
     st = StationMagnitudeStore.open(store)
     now = st.scan(magnitude_type="ML").sort_values(["event_id", "station_id"])
-    # CHECKS.md §4, obspy estimate_magnitude = Bakun & Joyner (1984) eq. 3: 3.0000, 1.7291,
-    # 5.0791 for the same amplitudes and distances (verified, run with obspy 1.5.1).
+    # docs/check-values.md §4, obspy estimate_magnitude = Bakun & Joyner (1984) eq. 3: 3.0000,
+    # 1.7291, 5.0791 for the same amplitudes and distances (verified, run with obspy 1.5.1).
     assert now["magnitude"].tolist() == pytest.approx([3.0000, 1.7291, 5.0791], abs=1e-4)
     assert (now["revision"] == 2).all()
     every = st.scan(magnitude_type="ML", all_revisions=True)

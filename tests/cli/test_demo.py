@@ -3,7 +3,7 @@
 Outside check: the demo's truth tables (``sample_events/demo_truth_*.csv``, written by the seeded
 generator beside the data) give every event's true magnitude; the demo scores the fused network
 magnitude, the plain mean and the median against it, and an oracle that fuses with the true
-station parameters (DESIGN §13).
+station parameters (docs/simulation.md).
 """
 
 from __future__ import annotations

@@ -244,7 +244,7 @@ def test_event_explains_the_stored_network_magnitude(learned_store: LearnedStore
     det = [c for c in doc["contributions"] if c["detected"]]
     w = np.array([c["weight"] for c in det])
     y = np.array([c["corrected_magnitude"] for c in det])
-    # GLS weights sum to one and reproduce the estimate (Aitken 1935; DESIGN §8.1).
+    # GLS weights sum to one and reproduce the estimate (Aitken 1935; docs/network-magnitude.md §2).
     assert w.sum() == pytest.approx(1.0, abs=1e-9)
     assert float(w @ y) == pytest.approx(doc["magnitude"], abs=1e-9)
     stored = fs.contributions("ML", eid)

@@ -84,7 +84,7 @@ def _readings(net: SimulatedNetwork) -> pd.DataFrame:
 
 
 def _fit_and_store(root: Path, config: SimulationConfig, seed: int, **fuse_kw: object) -> Chain:
-    """The real chain: simulate (DESIGN §13) -> StationModel.fit -> ModelRegistry.save ->
+    """The real chain: simulate (docs/simulation.md) -> StationModel.fit -> ModelRegistry.save ->
     fuse_events -> FusedStore.write_run."""
     net = simulate_network(config, seed=seed)
     with warnings.catch_warnings():
@@ -117,7 +117,7 @@ def chain(tmp_path_factory: pytest.TempPathFactory) -> Chain:
 
 @pytest.fixture(scope="module")
 def censored(tmp_path_factory: pytest.TempPathFactory) -> Chain:
-    """Non-detections with thresholds (DESIGN §11) and the censored likelihood."""
+    """Non-detections with thresholds (docs/censoring.md) and the censored likelihood."""
     root = tmp_path_factory.mktemp("censored")
     cfg = SimulationConfig(n_stations=12, n_events=300, pair_rhos=(0.5,), mode="censor")
     return _fit_and_store(root, cfg, seed=5, use_nondetections=True)

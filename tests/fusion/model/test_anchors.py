@@ -1,4 +1,4 @@
-"""Anchors of DESIGN §3: the reference-events loader, unit weights, constraints, continuity."""
+"""Anchors (docs/model.md §3.2): reference-events loader, unit weights, constraints, continuity."""
 
 from __future__ import annotations
 
@@ -51,7 +51,7 @@ def test_read_reference_events(tmp_path: Path) -> None:
     ],
 )
 def test_read_reference_events_errors(tmp_path: Path, text: str, message: str) -> None:
-    """Bad input gets a one-line error naming the file, the line and the fix (STYLE 17)."""
+    """Bad input: a one-line error naming file, line and fix (docs/conventions.md item 17)."""
     p = _write(tmp_path, text)
     with pytest.raises(MalformedFileError, match=message) as info:
         read_reference_events(p)
@@ -163,7 +163,7 @@ def _previous(units: list[str], bias: list[float]) -> StationParameters:
 
 
 def test_continuity_over_the_overlap() -> None:
-    """DESIGN §6: when R changes, the level comes from the reference units present in both.
+    """docs/rolling-fit.md §4: when R changes, the level comes from the reference units in both.
 
     Previous model: S0, S1, S9 (S9 retired). New fit: S0, S1, S2. The constraint ties the
     weighted mean of b − b_prev over the overlap {S0, S1} to 0.

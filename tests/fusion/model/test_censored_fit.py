@@ -1,20 +1,20 @@
-"""Joint fit of station parameters with non-detections (DESIGN §11.2, issue 7).
+"""Joint fit of station parameters with non-detections (docs/censoring.md §4, issue 7).
 
 Check values and their sources:
 
-- truncated normal N(100, 15²) below 80: mean 73.02798, variance 36.95043 — CHECKS.md §7
+- truncated normal N(100, 15²) below 80: mean 73.02798, variance 36.95043 — docs/check-values.md §7
   (verified: R package mvrtn example output; scipy reproduces them);
 - soft-threshold moments — numerical quadrature with scipy.integrate.quad (reference library);
 - observed information — a central-difference Hessian of the profile log-likelihood, whose
   per-event maxima come from :func:`fusion.network.censoring.fit_censored` (itself checked against
   scipy.optimize in tests/fusion/network/test_censoring.py);
-- without censoring the fixed point is the REML-EM's — derived (DESIGN §5.1: unprofiled EM and
-  profiled REML-EM share their fixed point);
-- the censor simulation (DESIGN §13 generator): event bias, b RMSE and σ̂/σ of DESIGN §11.2,
-  status [sim] (the design's own throwaway simulation, indicative only), with the DESIGN §13
-  acceptance target |bias| <= 0.03; detected-only bias positive at small M — Ringdal (1976),
-  BSSA 66(3):789; constants shared with tests/fusion/network/test_network_magnitude.py in
-  tests/reference/network.py.
+- without censoring the fixed point is the REML-EM's — derived (docs/estimator.md §4: unprofiled EM
+  and profiled REML-EM share their fixed point);
+- the censor simulation (docs/simulation.md generator): event bias, b RMSE and σ̂/σ of
+  docs/censoring.md §4, status [sim] (the design's own throwaway simulation, indicative only), with
+  the docs/simulation.md acceptance target |bias| <= 0.03; detected-only bias positive at small M —
+  Ringdal (1976), BSSA 66(3):789; constants shared with
+  tests/fusion/network/test_network_magnitude.py in tests/reference/network.py.
 """
 
 from __future__ import annotations
@@ -58,8 +58,8 @@ from fusion.workflows.dry_run import censoring_summary
 from stations.errors import ConfigError, ConvergenceWarning, InsufficientDataError
 from tests.reference import network as ref
 
-# DESIGN §11.2 [sim], censoring mode with known thresholds: b RMSE 0.014, median σ̂/σ 0.992;
-# detected-only REML-EM b RMSE 0.094. The allowances cover one replicate of 4000 events
+# docs/censoring.md §10 [sim], censoring mode with known thresholds: b RMSE 0.014, median σ̂/σ
+# 0.992; detected-only REML-EM b RMSE 0.094. The allowances cover one replicate of 4000 events
 # (bench/censoring_accuracy.py: 0.012 / 0.990 pooled over seeds, 0.071 detected-only).
 SIM_JOINT_B_RMSE_MAX = 0.025
 SIM_JOINT_SIGMA_RATIO = (0.95, 1.05)
@@ -67,7 +67,7 @@ SIM_JOINT_SIGMA_RATIO = (0.95, 1.05)
 
 @functools.lru_cache(maxsize=2)
 def _censor(seed: int = 7) -> tuple[SimulatedNetwork, RemlEmFit, CensoredStationFit]:
-    """DESIGN §13 censor mode, K = 40, N = 4000; REML-EM start and the joint fit."""
+    """docs/simulation.md censor mode, K = 40, N = 4000; REML-EM start and the joint fit."""
     net = simulate_network(SimulationConfig(mode="censor"), seed=seed)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -113,7 +113,7 @@ def _bin_bias(err: NDArray[np.float64], truth: NDArray[np.float64]) -> list[tupl
 
 
 def test_hard_threshold_moments_are_the_truncated_normal_of_checks_md() -> None:
-    """CHECKS.md §7 (verified, R mvrtn): N(100, 15²) below 80 → 73.02798, 36.95043."""
+    """docs/check-values.md §7 (verified, R mvrtn): N(100, 15²) below 80 → 73.02798, 36.95043."""
     m, v = nondetection_moments(ref.TRUNCNORM_MEAN, ref.TRUNCNORM_SD, ref.TRUNCNORM_BOUND)
     mean_txt, var_txt = ref.TRUNCNORM_BELOW
     assert float(m) == pytest.approx(float(mean_txt), abs=ref.printed_tol(mean_txt))
@@ -147,7 +147,7 @@ def test_soft_threshold_moments_match_quadrature(
 
 def test_without_censoring_the_fixed_point_is_the_reml_em() -> None:
     """No non-detection, Gaussian model: the joint fit (unprofiled EM) converges, from a
-    perturbed start, to the REML-EM fixed point (DESIGN §5.1), Var(b̂) included."""
+    perturbed start, to the REML-EM fixed point (docs/estimator.md §4), Var(b̂) included."""
     net = simulate_network(
         SimulationConfig(mode="mar", n_events=600, n_stations=12, pair_rhos=(), outlier_rate=0.0),
         seed=3,
@@ -272,7 +272,8 @@ def test_loo_predictor_is_close_to_the_exact_leave_one_out() -> None:
 
 
 def test_censor_simulation_events_are_unbiased_and_beat_the_detected_only_oracle() -> None:
-    """DESIGN §13 censor mode, known thresholds. With the joint fit's parameters the censored
+    """Censor mode (docs/simulation.md §2), known thresholds. With the joint fit's parameters the
+    censored
     network estimate has |bias| <= 0.03 in every bin with >= 100 events; the detections-only
     fit and estimate are biased > +0.15 in the lowest bin (Ringdal 1976); the RMSE is below
     that of the oracle that ignores non-detections (GLS of the detections, true parameters)."""
@@ -302,7 +303,8 @@ def test_censor_simulation_events_are_unbiased_and_beat_the_detected_only_oracle
 
 
 def test_censor_simulation_recovers_the_stations() -> None:
-    """b RMSE after anchor alignment and median σ̂/σ near DESIGN §11.2 [sim] (0.014 / 0.992);
+    """b RMSE after anchor alignment and median σ̂/σ near the [sim] values of docs/censoring.md §10
+    (0.014 / 0.992);
     the detections-only REML-EM is far worse (design: 0.094)."""
     net, start, cf = _censor()
     counts = net.observations.station_counts()
@@ -362,7 +364,7 @@ def _small() -> SimulatedNetwork:
 
 @pytest.mark.parametrize("kind", ["median", "mean_magnitude", "reference_events"])
 def test_anchors_hold_after_the_joint_fit(kind: str) -> None:
-    """The joint fit keeps the REML-EM's anchor (DESIGN §3): A2 median(b̂) = 0; A4 γ-weighted
+    """The joint fit keeps the REML-EM's anchor (docs/model.md §3): A2 median(b̂) = 0; A4 γ-weighted
     mean of M̂ = the target; A3 hard reference events keep M̂ = M*."""
     net = _small()
     obs = net.observations

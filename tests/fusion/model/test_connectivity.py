@@ -1,4 +1,4 @@
-"""Identifiability checks of DESIGN §3: components, anchors, bipartiteness (E12)."""
+"""Identifiability checks of docs/model.md §3: components, anchors, bipartiteness (E12)."""
 
 from __future__ import annotations
 
@@ -36,7 +36,7 @@ def test_e12_signless_laplacian_rank(name: str) -> None:
 
 
 def test_three_station_event_is_a_triangle() -> None:
-    """An event with three stations is an odd cycle: σ identifiable (DESIGN §3)."""
+    """An event with three stations is an odd cycle: σ identifiable (docs/model.md §3)."""
     event = np.zeros(3, dtype=np.int64)
     station = np.array([0, 1, 2])
     Q = signless_laplacian(event, station, 3).toarray()
@@ -67,7 +67,7 @@ def test_components_match_scipy_on_explicit_graph() -> None:
 
 
 def test_anchors_and_uncalibrated() -> None:
-    """A component without an anchor is uncalibrated; stations without rows too (DESIGN §3)."""
+    """Unanchored components and stations without rows are uncalibrated (docs/model.md §3)."""
     # Component A: stations 0-1-2 (a triangle event); component B: 3-4 (pair events only).
     event = np.array([0, 0, 0, 1, 1, 2, 2])
     station = np.array([0, 1, 2, 3, 4, 3, 4])

@@ -1,4 +1,4 @@
-"""Empirical-Bayes priors (DESIGN §5.2): Smyth's moderated variances and the bias prior."""
+"""Empirical-Bayes priors (docs/estimator.md §5): Smyth's moderated variances and the bias prior."""
 
 from __future__ import annotations
 
@@ -19,7 +19,7 @@ from tests.reference import estimator as ref
 
 
 def test_smyth_check_value() -> None:
-    """CHECKS.md §7: d0 = 4, s0² = 0.04, d = 6, s² = 0.09 → 0.07 (Smyth 2004, computed)."""
+    """docs/check-values.md §7: d0 = 4, s0² = 0.04, d = 6, s² = 0.09 → 0.07 (Smyth 2004)."""
     got = moderated_variance(ref.SMYTH_S2, ref.SMYTH_D, ref.SMYTH_D0, ref.SMYTH_S0_2)
     assert float(got) == pytest.approx(float(ref.SMYTH_MODERATED), abs=1e-12)
 
@@ -79,7 +79,7 @@ def test_variance_prior_infinite_when_no_spread() -> None:
 
 
 def test_variance_prior_needs_dof_five_and_three_stations() -> None:
-    """DESIGN §5.2: only stations with d_i >= 5 enter; too few eligible stations keep the prior."""
+    """docs/estimator.md §5: only stations with d_i >= 5 enter; too few eligible keep the prior."""
     assert fit_variance_prior([0.04, 0.05, 0.06], [4.9, 4.0, 10.0]) is None
     assert fit_variance_prior([0.04, 0.05, 0.06], [5.0, 6.0, 10.0]) is not None
 
@@ -127,7 +127,7 @@ def test_ebprior_validation() -> None:
 
 @pytest.mark.parametrize("module", ["fusion.model.eb_priors", "fusion.model.forgetting"])
 def test_docstring_examples(module: str) -> None:
-    """The Examples sections run (STYLE 18)."""
+    """The Examples sections run (docs/conventions.md item 18)."""
     import doctest
     import importlib
 

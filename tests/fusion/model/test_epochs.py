@@ -1,4 +1,4 @@
-"""CUSUM bias steps and station epochs (DESIGN §6)."""
+"""CUSUM bias steps and station epochs (docs/epochs.md)."""
 
 from __future__ import annotations
 
@@ -222,7 +222,7 @@ def test_in_control_run_length_matches_siegmund() -> None:
     assert run.mean() == pytest.approx(expected, rel=0.1)
 
 
-# -- the simulator of DESIGN §13 --------------------------------------------------------------
+# -- the simulator of docs/simulation.md -----------------------------------------------------------
 
 
 def _true_z(net: SimulatedNetwork) -> NDArray[np.float64]:
@@ -243,7 +243,7 @@ def _rows_after(net: SimulatedNetwork, z: NDArray[np.float64], when: np.datetime
 
 @pytest.mark.parametrize(("h", "max_steps"), [(8.0, 3), (5.0, 10)])
 def test_simulated_bias_step_is_found(h: float, max_steps: int) -> None:
-    # DESIGN §13: +0.3 step on one station mid-year; alarmed within 60 of its readings after
+    # docs/simulation.md: +0.3 step on one station mid-year; alarmed within 60 of its readings after
     # the step, change point within 10 readings of it. At the default h = 5 false alarms use up
     # three steps on about 4 stations in 10 (module docstring), hence max_steps = 10 there.
     for seed in range(100, 104):
@@ -281,7 +281,7 @@ def test_false_alarm_rate_without_step_is_as_documented() -> None:
 
 
 def test_model_reference_is_the_literal_cusum() -> None:
-    # With reference="model" the first segment monitors z itself (DESIGN §6 as written).
+    # With reference="model" the first segment monitors z itself (docs/epochs.md as written).
     rng = np.random.default_rng(5)
     obs, rows = _series_obs([120], rng)
     z = np.full(obs.n_obs, np.nan)

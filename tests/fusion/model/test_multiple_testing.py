@@ -21,7 +21,7 @@ _SM = {"bh": "fdr_bh", "by": "fdr_by"}
 
 
 def test_by_divisor_m10() -> None:
-    # CHECKS.md §7: Σ_{i≤10} 1/i = 2.928968 (statsmodels docs, verified; computed).
+    # docs/check-values.md §7: Σ_{i≤10} 1/i = 2.928968 (statsmodels docs, verified; computed).
     assert by_divisor(10) == pytest.approx(BY_DIVISOR_M10, abs=1e-6)
     assert by_divisor(1) == 1.0
     assert by_divisor(0) == 0.0

@@ -1,9 +1,9 @@
-"""The station model against general-purpose libraries on the CHECKS.md §6 simulation.
+"""The station model against general-purpose libraries on the docs/check-values.md §6 simulation.
 
-10 stations, 400 events, complete data, seeds as written in CHECKS.md §6. Independent estimators
-of the same two-way model: scikit-learn ``FactorAnalysis(n_components=1)`` (ML with M random)
-and statsmodels iterated WLS on ``mag ~ C(event) + C(station, Sum)`` with leverage-corrected
-station variances (feasible GLS). Tolerances: CHECKS.md §9.
+10 stations, 400 events, complete data, seeds as written in docs/check-values.md §6. Independent
+estimators of the same two-way model: scikit-learn ``FactorAnalysis(n_components=1)`` (ML with M
+random) and statsmodels iterated WLS on ``mag ~ C(event) + C(station, Sum)`` with leverage-corrected
+station variances (feasible GLS). Tolerances: docs/check-values.md §9.
 """
 
 from __future__ import annotations
@@ -27,12 +27,12 @@ from tests.reference import estimator as ref
 
 @functools.lru_cache(maxsize=1)
 def _checks6() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(m, b, σ) of CHECKS.md §6: b from default_rng(20240601), then M and noise from 20240602."""
-    K, N = ref.CHECKS6_N_STATIONS, ref.CHECKS6_N_EVENTS
-    b = np.random.default_rng(ref.CHECKS6_SEED_BIAS).normal(0.0, 0.2, K)
+    """(m, b, σ) of docs/check-values.md §6: b from seed 20240601, M and noise from 20240602."""
+    K, N = ref.LIBSIM_N_STATIONS, ref.LIBSIM_N_EVENTS
+    b = np.random.default_rng(ref.LIBSIM_SEED_BIAS).normal(0.0, 0.2, K)
     b -= b.mean()
-    sigma = np.asarray(ref.CHECKS6_SIGMA)
-    rng = np.random.default_rng(ref.CHECKS6_SEED_DATA)
+    sigma = np.asarray(ref.LIBSIM_SIGMA)
+    rng = np.random.default_rng(ref.LIBSIM_SEED_DATA)
     M = rng.uniform(1.5, 5.5, N)
     m = M[:, None] + b[None, :] + rng.normal(0.0, sigma, (N, K))
     return m, b, sigma
@@ -59,13 +59,13 @@ def _ours(robust: bool) -> RemlEmFit:
 
 
 def test_setup_reproduces_checks_values() -> None:
-    """CHECKS.md §6 (verified): centred column means 0.0355 (station 0), 0.2024 (station 9)."""
+    """docs/check-values.md §6 (verified): centred column means 0.0355 (station 0), 0.2024 (9)."""
     m, b, _ = _checks6()
     col = m.mean(axis=0) - m.mean()
-    assert col[0] == pytest.approx(float(ref.CHECKS6_BIAS_0), abs=ref.printed_tol("0.0355"))
-    assert col[9] == pytest.approx(float(ref.CHECKS6_BIAS_9), abs=ref.printed_tol("0.2024"))
+    assert col[0] == pytest.approx(float(ref.LIBSIM_BIAS_0), abs=ref.printed_tol("0.0355"))
+    assert col[9] == pytest.approx(float(ref.LIBSIM_BIAS_9), abs=ref.printed_tol("0.2024"))
     err = np.max(np.abs(col - b))
-    assert err == pytest.approx(float(ref.CHECKS6_MAX_BIAS_ERROR), abs=5e-5)
+    assert err == pytest.approx(float(ref.LIBSIM_MAX_BIAS_ERROR), abs=5e-5)
 
 
 def test_complete_data_identity() -> None:
@@ -84,14 +84,14 @@ def test_complete_data_identity() -> None:
 
 @pytest.mark.parametrize("robust", [False, True])
 def test_agrees_with_sklearn_factor_analysis(robust: bool) -> None:
-    """sklearn FactorAnalysis: b = mean_ − mean(mean_), σ² = noise_variance_ (CHECKS.md §6)."""
+    """sklearn FactorAnalysis: b = mean_ − mean(mean_), σ² = noise_variance_ (check-values §6)."""
     m, b, sigma = _checks6()
     fa = FactorAnalysis(n_components=1).fit(m)
     b_fa = fa.mean_ - fa.mean_.mean()
     s_fa = np.sqrt(fa.noise_variance_)
-    # The installed scikit-learn reproduces the σ̂ printed in CHECKS.md §6.
-    printed = np.array([float(x) for x in ref.CHECKS6_FA_SIGMA])
-    assert s_fa == pytest.approx(printed, abs=ref.CHECKS6_FA_SIGMA_TOL)
+    # The installed scikit-learn reproduces the σ̂ printed in docs/check-values.md §6.
+    printed = np.array([float(x) for x in ref.LIBSIM_FA_SIGMA])
+    assert s_fa == pytest.approx(printed, abs=ref.LIBSIM_FA_SIGMA_TOL)
     fit = _ours(robust)
     assert np.max(np.abs(fit.bias - b_fa)) <= ref.TOL_BETWEEN
     assert np.max(np.abs(fit.sigma - s_fa)) <= ref.TOL_BETWEEN
@@ -100,7 +100,7 @@ def test_agrees_with_sklearn_factor_analysis(robust: bool) -> None:
 
 
 def _statsmodels_iterated_wls(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Feasible GLS of CHECKS.md §6: WLS, σ_i² = Σ r²/Σ(1 − h), iterate to rtol 1e-4 on weights.
+    """Feasible GLS of docs/check-values.md §6: WLS, σ_i² = Σ r²/Σ(1 − h), iterated to rtol 1e-4.
 
     The leverage h is that of the whitened design, from statsmodels ``OLSInfluence``.
     """
@@ -131,17 +131,17 @@ def _statsmodels_iterated_wls(m: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 @pytest.mark.slow
 def test_agrees_with_statsmodels_iterated_wls() -> None:
-    """statsmodels two-way fixed effects, iterated WLS (CHECKS.md §6): ≤ 0.015 (CHECKS.md §9)."""
+    """statsmodels two-way fixed effects, iterated WLS: ≤ 0.015 (docs/check-values.md §6, §9)."""
     m, b, sigma = _checks6()
     b_wls, s_wls = _statsmodels_iterated_wls(m)
-    assert np.max(np.abs(b_wls - b)) == pytest.approx(0.0359, abs=0.002)  # CHECKS: 0.0359
-    assert np.max(np.abs(s_wls - sigma)) == pytest.approx(0.0287, abs=0.002)  # CHECKS: 0.0287
+    assert np.max(np.abs(b_wls - b)) == pytest.approx(0.0359, abs=0.002)  # §6: 0.0359
+    assert np.max(np.abs(s_wls - sigma)) == pytest.approx(0.0287, abs=0.002)  # §6: 0.0287
     for robust in (False, True):
         fit = _ours(robust)
         assert np.max(np.abs(fit.bias - b_wls)) <= ref.TOL_BETWEEN
         assert np.max(np.abs(fit.sigma - s_wls)) <= ref.TOL_BETWEEN
     # Without priors the REML-EM fixed point is the iterated-WLS one up to the O(1/n_i) leverage
-    # of b, which the σ-step leaves out (DESIGN §5): far inside the tolerance.
+    # of b, which the σ-step leaves out (docs/estimator.md §3): far inside the tolerance.
     flat = fit_reml_em(
         _obs(m), anchor=Anchor(), robust=False, prior=EBPrior(d0=0.0, s0_2=0.04, tau_b2=np.inf),
         eb_every=0, tol_log_sigma=1e-6, tol_bias=1e-8, max_iter=500,

@@ -1,4 +1,4 @@
-"""Correlated-pair detection, global independence test, difference tetrads (DESIGN §9, §10)."""
+"""Correlated-pair detection, global independence test, difference tetrads (docs/pairs.md)."""
 
 from __future__ import annotations
 
@@ -51,7 +51,7 @@ def _obs_from_arrays(
 
 
 def _t4_weights(net: SimulatedNetwork) -> NDArray[np.float64]:
-    """Student-t (ν = 4) weights from leave-one-out z with the true parameters (DESIGN §5.3)."""
+    """Student-t (ν = 4) weights from leave-one-out z, true parameters (docs/estimator.md §6)."""
     obs = net.observations
     s2 = net.sigma**2
     g = event_gls(
@@ -69,7 +69,7 @@ def _t4_weights(net: SimulatedNetwork) -> NDArray[np.float64]:
 
 
 def test_e11_overlap_table() -> None:
-    # DESIGN §9 table / E11 (computed); recomputed here with scipy.stats.norm.ppf.
+    # docs/pairs.md §6 table / E11 (computed); recomputed here with scipy.stats.norm.ppf.
     rho = np.asarray(E11_RHO)
     for alpha, table in ((0.05, E11_N_ALPHA_005), (0.001, E11_N_ALPHA_0001)):
         z = stats.norm.ppf(1 - alpha / 2) + stats.norm.ppf(0.8)
@@ -100,7 +100,7 @@ def test_fisher_z_interval_matches_scipy(n: int) -> None:
 
 @pytest.mark.parametrize("n", [3, 5, 8])
 def test_e4_exact_expectation(n: int) -> None:
-    # DESIGN §14 E4 (derived): exact covariance matrices computed with numpy.
+    # docs/worked-examples.md E4 (derived): exact covariance matrices computed with numpy.
     sigma2 = 0.04
     Sigma = sigma2 * np.eye(n)
     w = np.full(n, 1.0 / n)
@@ -116,8 +116,8 @@ def test_e4_exact_expectation(n: int) -> None:
 
 
 def test_e4_by_simulation_equal_stations() -> None:
-    # DESIGN §14 E4: n = 5 equal stations, all observing 4000 events, independent errors.
-    # All-station GLS residuals correlate at −1/(n−1) = −0.25, leave-two-out residuals at
+    # docs/worked-examples.md E4: n = 5 equal stations, all observing 4000 events, independent
+    # errors. All-station GLS residuals correlate at −1/(n−1) = −0.25, leave-two-out residuals at
     # +1/(n−1) = +0.25 (the statistic's null ρ0 is exactly that).
     n, N, sigma = 5, 4000, 0.2
     rng = np.random.default_rng(4)
@@ -234,7 +234,7 @@ def test_chunked_and_binary_search_paths_agree(monkeypatch: pytest.MonkeyPatch) 
     assert tet2.family_z == pytest.approx(tet.family_z, rel=1e-9)
 
 
-# -- the simulator of DESIGN §13 --------------------------------------------------------------
+# -- the simulator of docs/simulation.md -----------------------------------------------------------
 
 
 def _pair_keys(net: SimulatedNetwork) -> set[tuple[int, int]]:
@@ -242,8 +242,8 @@ def _pair_keys(net: SimulatedNetwork) -> set[tuple[int, int]]:
 
 
 def test_simulator_true_pairs_flagged_with_low_fdr() -> None:
-    # DESIGN §9 [sim]: K = 40, N = 4000, mar mode, true parameters as the fit: the 3 true pairs
-    # (ρ = 0.4, 0.5, 0.6) are flagged, FDR ≤ 0.1 (pooled over seeds), ρ̂ within ±0.15.
+    # docs/pairs.md §3 [sim]: K = 40, N = 4000, mar mode, true parameters as the fit: the 3 true
+    # pairs (ρ = 0.4, 0.5, 0.6) are flagged, FDR ≤ 0.1 (pooled over seeds), ρ̂ within ±0.15.
     flagged_total, false_total = 0, 0
     for seed in range(4):
         net = simulate_network(SimulationConfig(), seed=seed)
@@ -277,7 +277,7 @@ def test_simulator_true_pairs_flagged_with_low_fdr() -> None:
 
 
 def test_null_statistic_is_standard_normal_without_pairs() -> None:
-    # DESIGN §9 [sim]: null SD(T_self) 0.98; T ≈ N(0, 1) under H0.
+    # docs/pairs.md §3 [sim]: null SD(T_self) 0.98; T ≈ N(0, 1) under H0.
     net = simulate_network(SimulationConfig(pair_rhos=()), seed=5)
     det = detect_correlated_pairs(net.observations, net.bias, net.sigma**2, omega=_t4_weights(net))
     t = det.table["statistic"].to_numpy()
@@ -294,8 +294,8 @@ def _neighbour_mean(tab: pd.DataFrame, in_pair: NDArray[np.bool_]) -> float:
 
 
 def test_partner_exclusion_removes_negative_bias() -> None:
-    # DESIGN §9 [sim]: round 0 (no partners) reads pairs that share a station with a true pair
-    # negatively ("a partner left in the reference induces negative covariance"); the iteration
+    # docs/pairs.md §3 [sim]: round 0 (no partners) reads pairs that share a station with a true
+    # pair negatively ("a partner left in the reference induces negative covariance"); the iteration
     # removes it. Measured over two seeds: mean T of those pairs −0.4…−0.6 in round 0.
     for seed in (0, 1):
         net = simulate_network(SimulationConfig(), seed=seed)
@@ -331,9 +331,9 @@ def _correlated_network(
 
 
 def test_shrinkage_and_cap_of_the_covariance() -> None:
-    # DESIGN §8.1, §9: c = ĉ n/(n + n0), then |ρ| ≤ 0.9 min(σk/σl, σl/σk), i.e.
-    # |c| ≤ 0.9 min(σk², σl²). Pair (0, 1): σ = 0.1, 0.3, ρ = 0.8 → ĉ ≈ 0.024, cap 0.009.
-    # Pair (2, 3): σ = 0.2, 0.2, ρ = 0.5 → not capped; c = ĉ·n/(n + 20).
+    # docs/network-magnitude.md §2; docs/pairs.md: c = ĉ n/(n + n0), then |ρ| ≤ 0.9 min(σk/σl,
+    # σl/σk), i.e. |c| ≤ 0.9 min(σk², σl²). Pair (0, 1): σ = 0.1, 0.3, ρ = 0.8 → ĉ ≈ 0.024, cap
+    # 0.009. Pair (2, 3): σ = 0.2, 0.2, ρ = 0.5 → not capped; c = ĉ·n/(n + 20).
     sig = np.array([0.1, 0.3, 0.2, 0.2, 0.25, 0.15, 0.2, 0.3])
     obs, s2 = _correlated_network(sig, {0: 0.8, 1: 0.8}, 600, 1)
     obs2, _ = _correlated_network(sig, {2: 0.5, 3: 0.5}, 600, 2)
@@ -394,7 +394,8 @@ def test_weights_follow_the_documented_rules() -> None:
 
 
 def test_two_station_events_give_an_empty_table() -> None:
-    # A pair needs a third station for its reference (DESIGN §3, §9): nothing is tested.
+    # A pair needs a third station for its reference (docs/model.md §3; docs/pairs.md): nothing is
+    # tested.
     obs = ObservationSet.from_rows(
         magnitude_type="ML",
         event_id=["a", "a", "b", "b"],
@@ -445,7 +446,7 @@ def _gls_magnitude(net: SimulatedNetwork, pairs: PairCovariance) -> NDArray[np.f
 
 def test_global_test_p_values_uniform_under_the_null() -> None:
     # Under the model with the generating parameters G and G* are exchangeable, so p is
-    # uniform on {1/20, …, 1} (DESIGN §10; rank test of a parametric bootstrap).
+    # uniform on {1/20, …, 1} (docs/pairs.md §8; rank test of a parametric bootstrap).
     cfg = SimulationConfig(n_stations=12, n_events=400, pair_rhos=(), outlier_rate=0.0)
     p = []
     for seed in range(20):
@@ -516,7 +517,7 @@ def test_global_test_without_eligible_pairs_warns() -> None:
 
 
 def test_difference_tetrads_estimate_pair_covariance() -> None:
-    # DESIGN §10 (derived): E[d_ik d_lp] = c_il − c_ip − c_kl + c_kp; with independent other
+    # docs/pairs.md §8 (derived): E[d_ik d_lp] = c_il − c_ip − c_kl + c_kp; with independent other
     # stations the pair's mean tetrad product estimates c_il without σ or M.
     net = simulate_network(SimulationConfig(outlier_rate=0.0), seed=1)
     res = difference_tetrads(net.observations, net.bias, family=net.pairs)

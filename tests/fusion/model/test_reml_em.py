@@ -1,4 +1,4 @@
-"""The profiled REML-EM of DESIGN §5: worked examples, anchors, solvers, simulator accuracy."""
+"""The profiled REML-EM (docs/estimator.md §3): worked examples, anchors, solvers, accuracy."""
 
 from __future__ import annotations
 
@@ -53,14 +53,14 @@ def _sim(mode: str, seed: int, n_events: int = 2000, pairs: bool = False) -> Sim
     return simulate_network(cfg, seed=seed)
 
 
-# --- DESIGN §14 worked examples -------------------------------------------------------------
+# --- docs/worked-examples.md -------------------------------------------------------------
 
 
 def test_e8_naive_sequence_and_reml_fixed_point() -> None:
     """E8: the naive map σ_i² ← E r_i² collapses; the REML-EM σ-step leaves any split unchanged.
 
-    The naive loop below is written from DESIGN §4: with M_j free, E r_i² = σ_i² − 2w_iσ_i² +
-    Σ_k w_k²σ_k² (GLS weights w); DESIGN §14 prints its first six steps.
+    The naive loop below is written from docs/estimator.md §2: with M_j free, E r_i² = σ_i² −
+    2w_iσ_i² + Σ_k w_k²σ_k² (GLS weights w); docs/worked-examples.md prints its first six steps.
     """
     s = np.array(ref.E8_START)
     for expected in ref.E8_SEQUENCE:
@@ -203,7 +203,7 @@ def _fixed(obs: ObservationSet, anchor: Anchor, **kw: object):  # type: ignore[n
 
 
 def test_anchor_shifts_everything_by_one_constant() -> None:
-    """DESIGN §3: the anchor moves all b̂ by δ and all M̂ by −δ; σ̂ and V_j do not change."""
+    """docs/model.md §3: the anchor moves all b̂ by δ and all M̂ by −δ; σ̂ and V_j do not change."""
     net = _sim("mar", 1)
     obs = net.observations
     a = _fixed(obs, Anchor())
@@ -262,7 +262,7 @@ def test_mean_magnitude_anchor() -> None:
 
 
 def test_unanchored_component_is_uncalibrated() -> None:
-    """Two disjoint networks, reference stations only in the first (DESIGN §3)."""
+    """Two disjoint networks, reference stations only in the first (docs/model.md §3)."""
     rng = np.random.default_rng(6)
     N = 600
     m = rng.uniform(1, 4, N)[:, None] + rng.normal(0, 0.2, (N, 3)) + np.array([0.1, 0.0, -0.1])
@@ -290,7 +290,7 @@ def test_unanchored_component_is_uncalibrated() -> None:
 
 
 def test_direct_and_pcg_agree_with_pairs() -> None:
-    """Dense factorisation and projected CG solve the same bordered system (DESIGN §5.1)."""
+    """Dense factorisation and projected CG solve one bordered system (docs/estimator.md §4)."""
     net = _sim("select_m", 4, pairs=True)
     kw = {"anchor": Anchor(reference_stations=tuple(net.observations.station_ids[:8]))}
     a = fit_reml_em(net.observations, pairs=net.pairs, solver="direct", **kw)  # type: ignore[arg-type]
@@ -304,7 +304,7 @@ def test_direct_and_pcg_agree_with_pairs() -> None:
 
 
 def test_pair_covariances_are_re_estimated_shrunk_and_capped() -> None:
-    """σ-step for c_kl: Σγ(r_k r_l + V)/Σγ, shrunk n/(n + n0), |ρ| ≤ 0.9 min ratio (DESIGN §9)."""
+    """σ-step for c_kl: Σγ(r_k r_l + V)/Σγ, shrunk n/(n + n0), capped (docs/pairs.md §4)."""
     net = _sim("mar", 5, pairs=True)
     start = PairCovariance(net.pairs.k, net.pairs.l, np.zeros(3), net.observations.n_stations)
     fit = fit_reml_em(net.observations, pairs=start, anchor=Anchor())
@@ -357,7 +357,7 @@ def test_outputs_and_prior_dominated() -> None:
     assert fit.event_magnitude.shape == (N,)
     assert np.array_equal(fit.prior_dominated, fit.dof < fit.prior.d0)
     assert np.all(np.isnan(fit.event_magnitude[~fit.event_used]))
-    # Var(b̂) ≈ σ²/Σγω(1 − w) (DESIGN §5.2) for well-observed stations, within 15 %.
+    # Var(b̂) ≈ σ²/Σγω(1 − w) (docs/estimator.md §5) for well-observed stations, within 15 %.
     approx = fit.sigma2 / fit.dof
     good = fit.dof > 100
     assert np.allclose(fit.bias_var[good], approx[good], rtol=0.15)
@@ -372,7 +372,7 @@ def test_outputs_and_prior_dominated() -> None:
 
 @pytest.mark.parametrize(("mode", "seed"), [("mar", 11), ("select_m", 12)])
 def test_simulator_accuracy(mode: str, seed: int) -> None:
-    """Bias and σ recovery, event RMSE vs the oracle, the plain mean and the median (DESIGN §13).
+    """Bias and σ recovery, event RMSE vs the oracle, plain mean and median (docs/simulation.md).
 
     K = 40, N = 2000 (half the benchmark's year); bounds from tests/reference/estimator.py.
     """
@@ -402,12 +402,12 @@ def test_simulator_accuracy(mode: str, seed: int) -> None:
     assert ours <= ref.RMSE_ORACLE_FACTOR * rmse(oracle[ev])
     assert ours < rmse(plain[ev] - level)
     assert ours < rmse(med - level)
-    # Collapse guard (DESIGN §13).
+    # Collapse guard (docs/simulation.md).
     assert fit.sigma.min() >= ref.COLLAPSE_FRACTION * np.sqrt(fit.prior.s0_2)
 
 
 def test_collapse_guard_on_a_two_station_chain() -> None:
-    """Pair-only events (a bipartite chain, σ not identifiable): σ̂ stays off zero (DESIGN §4)."""
+    """Pair-only events (a bipartite chain): σ̂ stays off zero (docs/estimator.md §2)."""
     rng = np.random.default_rng(13)
     K, N = 6, 3000
     sigma = np.linspace(0.1, 0.3, K)

@@ -1,4 +1,7 @@
-"""StationModel: the estimator contract (STYLE 1–7, 20) and the whole nightly fit (issue 3)."""
+"""StationModel: the estimator contract and the whole nightly fit (issue 3).
+
+Contract: docs/conventions.md items 1–7 and 20.
+"""
 
 from __future__ import annotations
 
@@ -57,7 +60,7 @@ def test_init_only_assigns_and_get_params() -> None:
 
 
 def test_sklearn_clone() -> None:
-    """sklearn.base.clone rebuilds the estimator from get_params (STYLE 20)."""
+    """sklearn.base.clone rebuilds the estimator from get_params (docs/conventions.md item 20)."""
     est = StationModel(half_life_days=90.0, anchor="median", random_state=3)
     twin = clone(est)
     assert twin is not est
@@ -98,7 +101,7 @@ def test_fit_returns_self_and_keeps_params() -> None:
     ],
 )
 def test_parameter_validation(param: str, value: object, rule: str) -> None:
-    """STYLE 3: "The 'x' parameter of StationModel must be ... Got ... instead."."""
+    """Conventions item 3: "The 'x' parameter of StationModel must be ... Got ... instead."."""
     est = _quick(**{param: value})
     with pytest.raises(ConfigError, match=rf"The '{param}' parameter of StationModel must be"):
         est.fit(_net(1).observations)
@@ -144,7 +147,7 @@ def test_fit_outputs_and_parameters() -> None:
 
 
 def test_fit_flags_the_correlated_pairs() -> None:
-    """DESIGN §9 via model.pair_tests: the three co-located pairs are flagged and modelled."""
+    """docs/pairs.md via model.pair_tests: the three co-located pairs are flagged and modelled."""
     net = _net(2)
     est = _quick(detect_pairs=True).fit(net.observations)
     flagged = est.pair_table_[est.pair_table_["flagged"]]
@@ -164,7 +167,7 @@ def test_fit_flags_the_correlated_pairs() -> None:
 
 
 def test_fit_splits_a_stepped_station() -> None:
-    """DESIGN §6/§13: a +0.3 bias step mid-year opens a new epoch with its own bias."""
+    """docs/epochs.md: a +0.3 bias step mid-year opens a new epoch with its own bias."""
     net = _net(3, step=0.3, pairs=False)
     est = _quick(detect_epochs=True, cusum_h=8.0).fit(net.observations)
     steps = est.epoch_table_
@@ -184,7 +187,7 @@ def test_fit_splits_a_stepped_station() -> None:
 
 
 def test_leave_one_out_z_is_standard_normal_under_the_model() -> None:
-    """LOSO z (DESIGN §8.2) has mean ≈ 0 and SD ≈ 1 on data from the model (no outliers)."""
+    """LOSO z (docs/network-magnitude.md §7): mean ≈ 0, SD ≈ 1 on model data without outliers."""
     cfg = SimulationConfig(n_events=2000, pair_rhos=(), outlier_rate=0.0)
     net = simulate_network(cfg, seed=4)
     est = _quick().fit(net.observations)
@@ -203,7 +206,7 @@ def test_global_test_runs() -> None:
 
 
 def test_rolling_fit_continuity_and_warm_start() -> None:
-    """DESIGN §6: a refit as of a later time keeps the anchor level over the overlap."""
+    """docs/rolling-fit.md §4: a later refit keeps the anchor level over the overlap."""
     net = _net(1)
     obs = net.observations
     first = StationModel(
@@ -238,11 +241,12 @@ def test_empty_window_raises() -> None:
         _quick(window_days=10.0).fit(_net(1).observations, as_of="2024-01-01")
 
 
-# --- forgetting and unit matching (DESIGN §6) -----------------------------------------------------
+# --- forgetting and unit matching (docs/rolling-fit.md §1)
+# -----------------------------------------------------
 
 
 def test_time_weights() -> None:
-    """γ = 0.5**(age/h) inside the window, 0 outside and after as_of (DESIGN §6)."""
+    """γ = 0.5**(age/h) inside the window, 0 outside and after as_of (docs/rolling-fit.md §1)."""
     from fusion.model.forgetting import time_weights
 
     t = np.array(["2025-01-01", "2025-06-30", "2025-12-27", "2026-02-01"], dtype="datetime64[us]")

@@ -1,4 +1,4 @@
-"""Detection thresholds when the noise level is not stored, and the fallback (DESIGN §11.2).
+"""Detection thresholds when the noise level is not stored, and the fallback (docs/censoring.md §4).
 
 Check values and their sources:
 
@@ -6,8 +6,8 @@ Check values and their sources:
   IRLS uses the expected information, as the module does), transformed to (t0, t1, s) by the
   delta method;
 - truncated-normal mean of one detection — scipy.stats.truncnorm (reference library);
-- the DESIGN §13 censor generator: thresholds t0_i + 1.2 log10(Δ/10 km), t0_i ~ U(0.3, 0.9)
-  (the simulation's truth; DESIGN §13);
+- the docs/simulation.md censor generator: thresholds t0_i + 1.2 log10(Δ/10 km), t0_i ~ U(0.3, 0.9)
+  (the simulation's truth; docs/simulation.md);
 - the expected detected-only bias against the simulated one — derived (truncated normal mean,
   Johnson, Kotz & Balakrishnan 1994 [from memory]) and checked on the simulation;
 - the Gutenberg–Richter memorylessness behind the detections-only curve — Aki (1965) [from
@@ -54,7 +54,7 @@ from fusion.network.network_magnitude import EventFlag, fuse_events
 from fusion.observations import ObservationSet
 from stations.errors import ConfigError, SchemaError
 
-#: DESIGN §13 generator: threshold slope per decade of distance.
+#: docs/simulation.md generator: threshold slope per decade of distance.
 SIM_THRESHOLD_SLOPE = 1.2
 
 
@@ -154,7 +154,7 @@ def _true_t0(net: SimulatedNetwork) -> NDArray[np.float64]:
 
 def test_probit_with_the_true_magnitudes_recovers_the_simulated_thresholds() -> None:
     """Predictor M_j + b_i from the simulation's truth: t0 within 0.08 RMS of the generator's,
-    slopes near its 1.2 per decade (DESIGN §13)."""
+    slopes near its 1.2 per decade (docs/simulation.md)."""
     net = _censor()
     obs = net.observations
     mu = net.magnitude[obs.event] + net.bias[obs.station]

@@ -1,4 +1,4 @@
-"""Label-free validation: held-out station prediction, split halves, scatter checks (DESIGN §12)."""
+"""Label-free validation (docs/validation.md): held-out prediction, split halves, scatter."""
 
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ def clean_net():  # type: ignore[no-untyped-def]
 
 
 def test_held_out_identity_recovers_true_mse(clean_net) -> None:  # type: ignore[no-untyped-def]
-    # DESIGN §12 (derived; [sim] 0.0051/0.0051, 0.0072/0.0073, 0.0130/0.0131): held-out MSE
+    # docs/validation.md (derived; [sim] 0.0051/0.0051, 0.0072/0.0073, 0.0130/0.0131): held-out MSE
     # minus σ² equals each method's true MSE E[(M̃^(−i) − M)²]. The simulator knows M.
     net = clean_net
     obs = net.observations
@@ -45,7 +45,8 @@ def test_held_out_identity_recovers_true_mse(clean_net) -> None:  # type: ignore
         true_mse = np.mean((pred - net.magnitude[j]) ** 2)
         assert pooled.loc[m, "excess"] == pytest.approx(true_mse, rel=0.05, abs=2e-4)
         excess.append(pooled.loc[m, "excess"])
-    # Ranking of DESIGN §5.3 / §12: GLS < bias-corrected mean < plain mean, median.
+    # Ranking of docs/estimator.md §6; docs/validation.md: GLS < bias-corrected mean < plain mean,
+    # median.
     assert excess[0] < excess[1] < excess[2] < excess[3]
     assert (pooled["diff_ci_low"].iloc[1:] > 0).all()
 
@@ -87,7 +88,7 @@ def test_paired_bootstrap_se_matches_ratio_estimator(clean_net) -> None:  # type
 
 
 def test_correlated_pair_is_held_out_as_a_whole() -> None:
-    # DESIGN §12 caveat: with a flagged partner in the event, no method uses the partner to
+    # docs/validation.md caveat: with a flagged partner in the event, no method uses the partner to
     # predict its pair mate: changing the partner's reading leaves the mate's errors unchanged.
     net = simulate_network(SimulationConfig(n_stations=12, n_events=300), seed=4)
     obs = net.observations
@@ -151,7 +152,7 @@ def test_held_out_needs_events_with_three_stations() -> None:
 
 
 def test_split_half_correlation_matches_its_expectation() -> None:
-    # DESIGN §12: corr(b̂_odd, b̂_even) ≈ τ²/(τ² + Var b̂) for independent halves (derived;
+    # docs/validation.md: corr(b̂_odd, b̂_even) ≈ τ²/(τ² + Var b̂) for independent halves (derived;
     # 0.04/(0.04 + 0.01) = 0.8 here).
     rng = np.random.default_rng(9)
     K, tau2, v = 2000, 0.04, 0.01
@@ -215,7 +216,8 @@ def test_chi2_quadratic_form_with_pairs_matches_direct_inverse() -> None:
 
 
 def test_scatter_checks_under_the_model_and_misspecified(clean_net) -> None:  # type: ignore[no-untyped-def]
-    # Under the model χ²_j/(n_j − 1) follows χ²_{n−1}/(n−1) (DESIGN §8.1, §12).
+    # Under the model χ²_j/(n_j − 1) follows χ²_{n−1}/(n−1) (docs/network-magnitude.md §2;
+    # docs/validation.md).
     net = clean_net
     good = scatter_checks(net.observations, net.bias, net.sigma**2, pairs=net.pairs)
     assert good.ks_pvalue > 0.01
@@ -228,8 +230,8 @@ def test_scatter_checks_under_the_model_and_misspecified(clean_net) -> None:  # 
 
 
 def test_censoring_shows_as_residual_skewness_at_small_magnitude() -> None:
-    # DESIGN §11: detection on the reading skews small events' residuals (Ringdal 1976); the
-    # same data without censoring (mar mode) show none. Measured: −0.14…−0.16 in the three
+    # docs/censoring.md §1: detection on the reading skews small events' residuals (Ringdal 1976);
+    # the same data without censoring (mar mode) show none. Measured: −0.14…−0.16 in the three
     # lowest M̂ bins, +0.03 in the highest.
     cens = simulate_network(SimulationConfig(outlier_rate=0.0, mode="censor"), seed=3)
     res = scatter_checks(cens.observations, cens.bias, cens.sigma**2, pairs=cens.pairs)

@@ -4,17 +4,17 @@ Data: ``station_ml_geobalanced.csv`` of Holt, Pechmann & Koper (2022), BSSA 112(
 doi:10.1785/0120210240 (MIT licence; ``../shared/data/yellowstone-uuss/README.md``), read in
 place and ingested with the ``yellowstone`` reader, which stores SML − Corr, the station ML
 before the network's station correction. Nothing here knows a true event magnitude; the checks
-are the label-free ones of DESIGN §12 and two outside comparisons:
+are the label-free ones of docs/validation.md and two outside comparisons:
 
 - split halves (odd and even events): corr(b̂_odd, b̂_even) against τ_b²/(τ_b² + Var b̂)
-  [derived, DESIGN §12], bounded below through Fisher's z (Fisher 1915; SE of atanh r is
+  [derived, docs/validation.md], bounded below through Fisher's z (Fisher 1915; SE of atanh r is
   1/sqrt(n − 3), from memory);
-- held-out station prediction (DESIGN §12) on a rolling origin: on 1 January of each year the
-  model is fitted on the data before it with the shipped configuration (120-day half-life,
+- held-out station prediction (docs/validation.md) on a rolling origin: on 1 January of each year
+  the model is fitted on the data before it with the shipped configuration (120-day half-life,
   360-day window, warm start from the previous year's model, as the nightly run does) and
   predicts every reading of that year from the other stations; GLS against the plain mean,
   each after removing its own mean error (the plain mean sits on another level than the
-  anchored target m − b̂, and a level is not skill: DESIGN §3);
+  anchored target m − b̂, and a level is not skill: docs/model.md §3);
 - the network's published event ML (``EqML``): per-station medians of m − EqML are the
   classical labelled station terms; the learned biases should follow them;
 - the network's own station corrections (``Corr``; b ≈ −Corr if they described these
@@ -127,8 +127,8 @@ class RollingScore:
 
     ``mse`` is the plain mean square; ``mean_error`` its level part; ``level_free`` the mean
     square after removing each method's mean error (one common offset per method, as the demo
-    scores against truth: a network magnitude's level is arbitrary until anchored, DESIGN §3).
-    Magnitude units and their squares.
+    scores against truth: a network magnitude's level is arbitrary until anchored, docs/model.md
+    §3). Magnitude units and their squares.
     """
 
     mse: dict[str, float]
@@ -171,7 +171,7 @@ def _evaluation_set(
 
 def _rolling_held_out(uuss: Uuss, *, detect_epochs: bool) -> RollingScore:
     """Fit on 1 January of each year 1999-2020 with the shipped [learn]/[pairs]/[epochs]
-    settings and warm start, predict that year's readings (DESIGN §12 protocol per year)."""
+    settings and warm start, predict that year's readings (docs/validation.md protocol per year)."""
     obs, cfg = uuss.obs, uuss.cfg
     t_row = obs.event_time[obs.event]
     rows_all, previous, fits = [], None, 0
@@ -225,7 +225,7 @@ def rolling(uuss: Uuss) -> dict[bool, RollingScore]:
 _EPOCH_XFAIL = pytest.mark.xfail(
     strict=True,
     raises=AssertionError,  # only the final claim may fail; set-up failures stay failures
-    reason="CUSUM bias steps (DESIGN §6) assume independent leave-one-out z; on Yellowstone a "
+    reason="CUSUM bias steps (docs/epochs.md) assume independent leave-one-out z; on Yellowstone a "
     "station's z are serially correlated (swarms share paths). Scaling by the lag-1 "
     "autocorrelation (fusion.model.epochs.lag1_scale) halved the splits over 22 years "
     "(55 to 28), the "

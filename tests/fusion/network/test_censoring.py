@@ -1,4 +1,4 @@
-"""The censored (Tobit) event likelihood and its Newton maximiser (DESIGN §11.1)."""
+"""The censored (Tobit) event likelihood and its Newton maximiser (docs/censoring.md §3)."""
 
 from __future__ import annotations
 
@@ -66,11 +66,11 @@ def _scipy_loglik(
     )
 
 
-# -- DESIGN §14 E5 -------------------------------------------------------------------------------
+# -- docs/worked-examples.md E5 --------------------------------------------------------------------
 
 
 def test_e5_hard_threshold() -> None:
-    """E5: M̂ = 2.002124, SE = 0.123919 (DESIGN §14), in at most 6 Newton steps (§11.1)."""
+    """E5: M̂ = 2.002124, SE = 0.123919, in at most 6 Newton steps (docs/censoring.md §3)."""
     fit = fit_censored(_e5(), np.array([np.mean(E5_DETECTIONS)]))
     assert fit.converged[0]
     assert 3 <= fit.n_iter[0] <= 6
@@ -79,15 +79,15 @@ def test_e5_hard_threshold() -> None:
 
 
 def test_e5_soft_threshold() -> None:
-    """E5 with g = 0.2: M̂ = 2.015439 (DESIGN §14)."""
+    """E5 with g = 0.2: M̂ = 2.015439 (docs/worked-examples.md)."""
     fit = fit_censored(_e5(E5_SOFT_SD), np.array([np.mean(E5_DETECTIONS)]))
-    # DESIGN §14 tolerance 1e-6: the exact maximum is 2.0154384 (scipy agrees, test below),
-    # one unit below the printed sixth decimal.
+    # docs/worked-examples.md tolerance 1e-6: the exact maximum is 2.0154384 (scipy agrees, test
+    # below), one unit below the printed sixth decimal.
     assert fit.magnitude[0] == pytest.approx(float(E5_SOFT_MAGNITUDE), abs=E_TOL)
 
 
 def test_e5_detected_only() -> None:
-    """E5 without non-detections: the mean 2.1 with SE σ/√3 = 0.1443 (DESIGN §14)."""
+    """E5 without non-detections: the mean 2.1 with SE σ/√3 = 0.1443 (docs/worked-examples.md)."""
     data = CensoredEventData.from_rows(
         np.zeros(3, dtype=np.int64), E5_DETECTIONS, [E5_SIGMA] * 3, ["detected"] * 3, 1
     )
@@ -263,7 +263,7 @@ def test_inverse_mills_ratio_moderate_z_matches_pdf_over_cdf() -> None:
 
 
 def test_truncated_normal_checks_values() -> None:
-    """CHECKS.md §7: N(100, 15²) truncated at 80, R package mvrtn output (verified)."""
+    """docs/check-values.md §7: N(100, 15²) truncated at 80, R package mvrtn output (verified)."""
     for kwargs, expected in (
         ({"lower": TRUNCNORM_BOUND}, TRUNCNORM_ABOVE),
         ({"upper": TRUNCNORM_BOUND}, TRUNCNORM_BELOW),

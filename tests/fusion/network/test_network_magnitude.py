@@ -1,4 +1,7 @@
-"""Per-event network magnitudes: GLS, robust weights, rules, diagnostics (DESIGN §8, §11, §14)."""
+"""Per-event network magnitudes: GLS, robust weights, rules, diagnostics.
+
+See docs/network-magnitude.md, docs/censoring.md §3 and docs/worked-examples.md.
+"""
 
 from __future__ import annotations
 
@@ -95,7 +98,7 @@ def _num(text: str | Sequence[str]) -> NDArray[np.float64]:
     return np.asarray([float(t) for t in ([text] if isinstance(text, str) else text)])
 
 
-# -- DESIGN §14 E1 -------------------------------------------------------------------------------
+# -- docs/worked-examples.md E1 --------------------------------------------------------------------
 
 
 @pytest.fixture(scope="module")
@@ -105,7 +108,7 @@ def e1() -> FusedMagnitudes:
 
 
 def test_e1_weights_magnitude_variance(e1: FusedMagnitudes) -> None:
-    """E1: w, M̂, V, SE (DESIGN §14, tolerance 1e-6)."""
+    """E1: w, M̂, V, SE (docs/worked-examples.md, tolerance 1e-6)."""
     ev, c = e1.events.iloc[0], e1.contributions
     np.testing.assert_allclose(c["weight"], _num(ref.E1_WEIGHTS), atol=E_TOL)
     assert ev["magnitude"] == pytest.approx(float(ref.E1_MAGNITUDE), abs=E_TOL)
@@ -127,7 +130,7 @@ def test_e1_plain_mean_se_and_variance_ratio(e1: FusedMagnitudes) -> None:
 
 
 def test_e1_chi2_and_p_value(e1: FusedMagnitudes) -> None:
-    """E1: χ² = 3.20408 on 2 dof; p = 0.2015 from scipy.stats.chi2.sf (DESIGN §14)."""
+    """E1: χ² = 3.20408 on 2 dof; p = 0.2015 from scipy.stats.chi2.sf (docs/worked-examples.md)."""
     ev = e1.events.iloc[0]
     assert ev["chi2"] == pytest.approx(float(ref.E1_CHI2), abs=printed_tol(ref.E1_CHI2))
     p = stats.chi2.sf(ev["chi2"], df=ev["n_stations"] - 1)
@@ -150,7 +153,7 @@ def test_e1_against_statsmodels_wls(e1: FusedMagnitudes) -> None:
 
 
 def test_e1_loso_z_and_influence(e1: FusedMagnitudes) -> None:
-    """E1: LOSO z and influence per station (DESIGN §14), max |·| in the event table."""
+    """E1: LOSO z and influence per station, and their max |·| in the event table."""
     c, ev = e1.contributions, e1.events.iloc[0]
     np.testing.assert_allclose(c["z"], _num(ref.E1_LOSO_Z), atol=printed_tol("0.00001"))
     np.testing.assert_allclose(c["influence"], _num(ref.E1_INFLUENCE), atol=E_TOL)
@@ -192,7 +195,8 @@ def test_e2_correlated_pair_weights() -> None:
     cov[0, 1] = cov[1, 0] = c
     true_var = np.ones(3) @ cov @ np.ones(3) / 9.0
     assert true_var == pytest.approx(float(ref.E2_EQUAL_TRUE_VARIANCE), abs=E_TOL)
-    assert claimed < true_var  # ignoring a real correlation shrinks the SE (DESIGN §8.3)
+    # ignoring a real correlation shrinks the SE (docs/network-magnitude.md §8)
+    assert claimed < true_var
 
 
 def test_e3_negative_weight_is_flagged() -> None:
@@ -262,7 +266,7 @@ def _e5_obs() -> tuple[ObservationSet, StationParameters]:
 
 
 def test_e5_through_fuse_events() -> None:
-    """E5 via fuse_events: Tobit 2.002124 ± 0.123919 (DESIGN §14); 2 non-detections used."""
+    """E5 via fuse_events: Tobit 2.002124 ± 0.123919; 2 non-detections used."""
     obs, params = _e5_obs()
     ev = fuse_events(obs, params, use_nondetections=True).events.iloc[0]
     assert ev["magnitude"] == pytest.approx(float(ref.E5_MAGNITUDE), abs=E_TOL)
@@ -327,7 +331,7 @@ def test_clipped_reading_is_a_lower_bound() -> None:
 
 
 def test_single_station_rule() -> None:
-    """n = 1: M̂ = m − b̂, SE = sqrt(σ̃² + Var b̂), flag single-station (DESIGN §8.1)."""
+    """n = 1: M̂ = m − b̂, SE = sqrt(σ̃² + Var b̂), single-station (docs/network-magnitude.md §5)."""
     params = _params(["XX.A."], [0.2], bias=[0.15], bias_var=[0.01])
     fused = fuse_events(_obs(["e"], ["XX.A."], [3.0]), params)
     ev = fused.events.iloc[0]
@@ -357,7 +361,7 @@ def test_two_station_rule(second: float, flagged: bool) -> None:
 
 
 def test_unknown_station_gets_prior_bias_and_variance() -> None:
-    """A station missing from the model: b̂ = 0 ± τ_b, σ̃² = s0² (DESIGN §5.2); flagged."""
+    """A station missing from the model: b̂ = 0 ± τ_b, σ̃² = s0² (docs/estimator.md §5); flagged."""
     params = _params(["XX.A.", "XX.B."], [0.2, 0.2], bias=[0.3, -0.1], tau_b2=0.05, s0_2=0.07)
     obs = _obs(["e"] * 3, ["XX.A.", "XX.B.", "YY.NEW."], [3.3, 2.9, 3.2])
     fused = fuse_events(obs, params, robust_min_stations=10)
@@ -471,7 +475,7 @@ def test_robust_weights_downweight_a_planted_outlier() -> None:
 
 
 def test_robust_fixed_point_is_consistent() -> None:
-    """At convergence ω = min(1, (ν+1)/(ν+z²)) with the reported LOSO z (DESIGN §5.3)."""
+    """At convergence ω = min(1, (ν+1)/(ν+z²)) with the reported LOSO z (docs/estimator.md §6)."""
     rng = np.random.default_rng(12)
     y = 2.0 + 0.25 * rng.standard_normal(8)
     y[[1, 5]] += [0.9, -0.7]
@@ -487,7 +491,7 @@ def test_robust_weights_do_nothing_with_two_stations() -> None:
     np.testing.assert_array_equal(c["robust_weight"], [1.0, 1.0])
 
 
-# -- simulations (DESIGN §13) ---------------------------------------------------------------------
+# -- simulations (docs/simulation.md) --------------------------------------------------------------
 
 
 def _true_params(net: SimulatedNetwork) -> StationParameters:
@@ -522,7 +526,7 @@ def test_simulation_mar_rmse_and_coverage(seed: int) -> None:
     inside = (fused.events["ci_low"] <= net.magnitude) & (net.magnitude <= fused.events["ci_high"])
     lo, hi = ref.SIM_COVERAGE_68
     assert lo <= inside.mean() <= hi
-    # Beats the plain mean and the median (DESIGN §13 acceptance).
+    # Beats the plain mean and the median (docs/simulation.md §4 acceptance).
     for col in ("plain_mean", "median"):
         other = fused.events[col].to_numpy() - net.bias.mean()
         assert rmse < np.sqrt(np.mean((other - net.magnitude) ** 2))
@@ -624,7 +628,7 @@ def test_mean_and_median_against_pandas_groupby() -> None:
     np.testing.assert_allclose(fused.events["median"], g.median().to_numpy(), rtol=1e-12)
 
 
-# -- edge cases (STYLE item 6) -----------------------------------------------------------------
+# -- edge cases (docs/conventions.md item 6) -------------------------------------------------------
 
 
 @pytest.mark.parametrize(
@@ -788,7 +792,7 @@ def test_yellowstone_network_corrections_reproduce_station_ml_means() -> None:
         epoch_end=end,
         bias=-ep["Corr"].to_numpy(),
         bias_var=np.zeros(K),
-        sigma2=np.full(K, 0.21**2),  # HB87 residual SD (CHECKS.md §8), any equal value works
+        sigma2=np.full(K, 0.21**2),  # HB87 residual SD (check-values §8); any equal value works
         prior_dominated=np.zeros(K, bool),
         pairs=PairCovariance.empty(K),
         tau_b2=0.04,

@@ -1,4 +1,4 @@
-"""The event picture on DESIGN §14 worked example E1, plus colours and axis labels."""
+"""The event picture on docs/worked-examples.md E1, plus colours and axis labels."""
 
 from __future__ import annotations
 
@@ -22,8 +22,8 @@ from fusion.report.figures import draw_station, station_figure
 from fusion.report.palette import OKABE_ITO, ROLE
 from stations.errors import ConfigError
 
-# DESIGN.md §14 E1 (exact worked example, recomputed; tolerance 1e-6): GLS of bias-corrected
-# readings (3.9, 4.3, 4.0) with σ = (0.1, 0.2, 0.3).
+# docs/worked-examples.md E1 (exact worked example, recomputed; tolerance 1e-6): GLS of
+# bias-corrected readings (3.9, 4.3, 4.0) with σ = (0.1, 0.2, 0.3).
 E1_READINGS = (3.9, 4.3, 4.0)
 E1_SIGMA = (0.1, 0.2, 0.3)
 E1_WEIGHTS = (0.734694, 0.183673, 0.081633)

@@ -16,7 +16,7 @@ from fusion.workflows.fusing import fuse_observations, fuse_with_version
 
 
 def test_version_curves_give_missing_thresholds_to_the_network_estimate(tmp_path: Path) -> None:
-    """Non-detections stored without a threshold (DESIGN §11, "thresholds unknown"): the model
+    """Non-detections stored without a threshold (docs/censoring.md §7): the model
     learns detection curves, stores them with the version, and fusing with that version uses
     the non-detections with estimated thresholds, which pulls the detected-only estimate of
     small events down (Ringdal 1976: the detecting stations' average is biased high)."""

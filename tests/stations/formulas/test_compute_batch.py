@@ -74,7 +74,7 @@ def metadata() -> StationMetadata:
 
 
 def test_ml_from_wood_anderson_millimetres_with_given_distance() -> None:
-    """CHECKS.md §3 #1 through the batch: 1 mm at 100 km -> 3.0009, formula recorded."""
+    """docs/check-values.md §3 #1 through the batch: 1 mm at 100 km -> 3.0009, formula recorded."""
     result = compute_station_magnitudes(
         _records(dict(amplitude=1.0, amplitude_unit="mm_wa", hypocentral_distance_km=100.0))
     )
@@ -200,7 +200,7 @@ def test_out_of_domain_rejected_by_default_and_flagged_when_allowed() -> None:
     strict = compute_station_magnitudes(frame)
     assert len(strict.records) == 1 and strict.records["magnitude"].iloc[0] == pytest.approx(
         4.8193, abs=1e-4
-    )  # CHECKS.md §3 #8
+    )  # docs/check-values.md §3 #8
     assert strict.rejected["reason"].iloc[0] == (
         "Ms_20 IASPEI-2013: period 25 s is above 22 s (IASPEI standard range); outside the "
         "standard's validity domain: set allow_out_of_domain to compute it with a flag"
@@ -255,7 +255,7 @@ def test_wrong_or_missing_unit_is_rejected_with_the_unit_error_text() -> None:
 
 
 def test_non_detection_amplitude_becomes_the_noise_threshold() -> None:
-    """DESIGN §2: the noise amplitude goes through the same formula into noise_threshold."""
+    """docs/model.md §2: the noise amplitude goes through the same formula into noise_threshold."""
     frame = _records(
         dict(detected=False, amplitude=0.01, amplitude_unit="mm_wa", hypocentral_distance_km=100.0)
     )
@@ -297,7 +297,7 @@ def test_types_without_an_amplitude_formula_and_mb_lg_without_gamma() -> None:
 
 
 def test_component_letter_checked_against_the_formula() -> None:
-    """IASPEI: ML on horizontal components, mb on the vertical (CHECKS.md §1)."""
+    """IASPEI: ML on horizontal components, mb on the vertical (docs/check-values.md §1)."""
     frame = _records(
         dict(amplitude=1.0, amplitude_unit="mm_wa", hypocentral_distance_km=100.0, channel="HHZ"),
         dict(magnitude_type="mb", amplitude=100.0, amplitude_unit="nm", period=1.0,

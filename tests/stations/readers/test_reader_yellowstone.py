@@ -100,7 +100,7 @@ def test_half_amp_is_a_quarter_of_the_two_horizontals(rows: list[dict[str, str]]
 
 
 def test_half_amp_is_the_zero_to_peak_amplitude_of_the_ml(result: ReadResult) -> None:
-    """Hutton & Boore (1987) ML (CHECKS.md §1, verified: log10 A_mm + 1.110 log10(r/100)
+    """Hutton & Boore (1987) ML (docs/check-values.md §1, verified: log10 A_mm + 1.110 log10(r/100)
     + 0.00189 (r - 100) + 3.0, r hypocentral km) of halfAmpH lies within 0.2 (median) of
     SML - Corr, that of twice halfAmpH (the mean of AmpE and AmpN) 0.3 further away
     (log10 2 = 0.30). The network's own distance curve differs, so only the median gap is
