@@ -1,6 +1,6 @@
 """Accuracy of the station fit and the network magnitudes with non-detections (issue 7).
 
-The docs/simulation.md ``censor`` simulation (K = 40 stations, N = 4000 events a year, G–R
+The ``censor`` simulation of docs/simulation.md (K = 40 stations, N = 4000 events a year, G–R
 magnitudes above 1.0, three correlated pairs, 1 % outlier cells; a station reports only when its
 station magnitude clears t_ij = t0_i + 1.2 log10(Δ/10 km), and its non-detections are stored with
 t_ij) is run for several seeds. Side by side, on the same events (every event with a detection):
@@ -19,10 +19,10 @@ t_ij) is run for several seeds. Side by side, on the same events (every event wi
   outlier model), censored network estimate — the issue-7 method;
 - ``joint t(4)`` and ``joint none``: the joint fit with the Student-t or no outlier model;
 - ``thr +0.1`` / ``thr −0.1`` / ``thr N(0,.15²)``: every stored threshold wrong by that much,
-  in the fit and in the network estimate (docs/censoring.md §10 sensitivity);
+  in the fit and in the network estimate (sensitivity, docs/censoring.md §10);
 - ``estimated thr``: thresholds hidden, estimated from probit detection curves
   (:func:`fusion.model.censored_fit.refit_with_nondetections`, 3 rounds);
-- ``safe cells``: no non-detection stored at all; the docs/censoring.md §8 fallback (fit on safe
+- ``safe cells``: no non-detection stored at all; the fallback of docs/censoring.md §8 (fit on safe
   cells, detections-only network estimate).
 
 Metrics, pooled over seeds: event bias in magnitude bins 1–1.5, 1.5–2, 2–2.5, > 2.5 of the
@@ -30,8 +30,8 @@ true M (bins with >= 100 events per seed on average), overall bias and RMSE (fit
 put on the true level by the mean true bias, the level of the sum-zero anchor), 68 % coverage
 of the SE, station bias RMSE after anchor alignment and median σ̂/σ, seconds per fit.
 
-Targets (docs/simulation.md; [sim] values of docs/censoring.md §4 beside them): |bias| <= 0.03 in
-every bin with >= 100 events for ``joint``; ``det-only`` lowest bin > +0.15 (Ringdal 1976:
+Targets (docs/simulation.md §4; [sim] values of docs/censoring.md §10 beside them): |bias| <= 0.03
+in every bin with >= 100 events for ``joint``; ``det-only`` lowest bin > +0.15 (Ringdal 1976:
 detected-only averages are biased high at small M); ``joint`` RMSE below ``det-only oracle``; b RMSE
 and median σ̂/σ near 0.014 / 0.992; threshold errors ±0.1 within +0.066 / −0.051.
 

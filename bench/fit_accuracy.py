@@ -1,12 +1,12 @@
-"""Accuracy of the station model on the docs/simulation.md simulator, with the issue-3 targets.
+"""Accuracy of the station model on the simulator of docs/simulation.md, with the issue-3 targets.
 
 For several seeds and the missingness modes ``mar`` and ``select_m`` (K = 40 stations, N = 4000
 events, three co-located pairs with ρ = 0.4, 0.5, 0.6, 1 % outlier cells; ``mar-clean`` without
 outliers, where the oracle is the true efficiency bound) the full
 :class:`fusion.model.station_model.StationModel` is fitted (pairs on, epochs off, no forgetting).
-Event magnitudes are the docs/network-magnitude.md §2 GLS estimate with s_i² = σ̃_i²/ω_ij +
-Var(b̂_i) and the flagged pair covariances (:func:`fusion.network.event_gls.event_gls`), SE_j =
-sqrt(V_j).
+Event magnitudes are the GLS estimate of docs/network-magnitude.md §2 with
+s_i² = σ̃_i²/ω_ij + Var(b̂_i) and the flagged pair covariances
+(:func:`fusion.network.event_gls.event_gls`), SE_j = sqrt(V_j).
 
 Metrics (docs/simulation.md), pooled over seeds:
 
@@ -24,8 +24,8 @@ Metrics (docs/simulation.md), pooled over seeds:
   between the step and the alarm (CUSUM k = 0.5, h = 5 and h = 8), and false alarms per
   1,000 readings on the other stations.
 
-An ablation line runs :func:`fusion.model.reml_em.fit_reml_em` with the literal docs/estimator.md §3
-σ-step (``scale_consistency=False``) next to the default.
+An ablation line runs :func:`fusion.model.reml_em.fit_reml_em` with the textbook σ-step
+(docs/estimator.md §7.1, ``scale_consistency=False``) next to the default.
 
 Usage::
 
@@ -65,7 +65,7 @@ TARGETS = {
 
 
 def _event_estimates(net: SimulatedNetwork, model: StationModel) -> tuple[Any, Any]:
-    """docs/network-magnitude.md §2 GLS magnitudes and variances with the fitted parameters."""
+    """GLS magnitudes and variances (docs/network-magnitude.md §2) with the fitted parameters."""
     obs = net.observations
     fit = model.fit_
     rows = np.flatnonzero(np.isfinite(fit.row_weight))

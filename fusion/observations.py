@@ -7,7 +7,7 @@ are ``np.bincount(obs.event, weights=x, minlength=obs.n_events)`` and broadcast 
 ``[obs.event]``; per-station sums use ``obs.station`` likewise (docs/estimator.md §4). No routine
 loops over events or rows in Python.
 
-Cell states (docs/model.md §2): ``detected`` rows carry a magnitude (``clipped`` ones a lower
+Cell states (docs/model.md §2.1): ``detected`` rows carry a magnitude (``clipped`` ones a lower
 bound); non-detections have ``magnitude = NaN`` and a ``threshold`` if the noise level is known;
 unavailable cells have no row.
 """

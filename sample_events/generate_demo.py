@@ -38,7 +38,7 @@ log10(1 + 5e-4)). The pre-event noise amplitude of a reading (the station's medi
 log-normal factor) goes through the same formula to give ``noise_threshold``. A station reports
 when it was operating (installed and not in an outage: about 92 % of the time), lies within
 250 km of the epicentre, and its rounded reading clears its rounded noise threshold; operating
-stations within 250 km that did not report give a non-detection row (docs/model.md §2;
+stations within 250 km that did not report give a non-detection row (docs/model.md §2.1;
 docs/censoring.md). A reading whose amplitude exceeds the station's clip amplitude is stored at the
 clip level with ``clipped = true`` (the magnitude is a lower bound). Events that no station reported
 are dropped.

@@ -1,7 +1,7 @@
 """Declared Arrow schemas and controlled vocabularies of the station-magnitude store.
 
 One row is one station-level reading for one event and one magnitude type. A cell of the
-station-event table is in one of three states (docs/model.md §2):
+station-event table is in one of three states (docs/model.md §2.1):
 
 ========== ============================================= ==========================================
 state      meaning                                       stored as

@@ -43,7 +43,7 @@ profiled REML-EM fit (:func:`fusion.model.reml_em.fit_reml_em`). One iteration:
    - ``"none"``: ω = 1.
 
    Why the mixture: under censoring the outlying cells concentrate among the detections of
-   small events (measured on the docs/simulation.md censor simulation: 4.7 % of the detections of
+   small events (measured on the censor simulation of docs/simulation.md: 4.7 % of the detections of
    one-detection events are outlier cells, 1.7 % of all detections, 1 % of all cells). A
    Student-t(4) weight bounds an outlier's share of the σ-step only at (ν + 1)/κ_ν ≈ 6.4 clean
    cells; the mixture removes gross outliers from the σ-step. Median σ̂/σ over 5 seeds
@@ -63,10 +63,10 @@ profiled REML-EM fit (:func:`fusion.model.reml_em.fit_reml_em`). One iteration:
        σ_i² = (d0 s0² + Σ_D γ c_ij (r_ij² + V_j) + Σ_{C∪U} γ E(x − b_i)²) / (d0 + Σ γ c_ij),
 
    γ the forgetting weights, c_ij = 1 − π_ij for detections (mixture; 1 otherwise and for
-   censored cells; ``student_t`` uses ω r²/κ_ν + V). V_j is the REML correction of docs/estimator.md
-   §2: r_ij is measured from an estimate M̂_j that used r_ij. With a robust outlier model the
-   σ-step uses the cells of events with three or more detections only, the events where an
-   outlying detection can be recognised; the b-step uses every event.
+   censored cells; ``student_t`` uses ω r²/κ_ν + V). V_j is the REML correction of
+   docs/estimator.md §2: r_ij is measured from an estimate M̂_j that used r_ij. With a robust
+   outlier model the σ-step uses the cells of events with three or more detections only, the events
+   where an outlying detection can be recognised; the b-step uses every event.
 4. **Re-anchor** with the REML-EM's constraints (:func:`fusion.model.anchors.level_constraints`,
    same
    reference units, weights and continuity): each component is shifted by one constant (A1,
@@ -914,7 +914,7 @@ def _information(
 
 
 def _diagonal_information(c: _Cells, es: _EventStep) -> NDArray[np.float64]:
-    """Diagonal of the profiled information: Σγh − Σ g h² per unit (docs/estimator.md §5 form)."""
+    """Diagonal of the profiled information, Σγh − Σ g h² per unit (docs/estimator.md §5.2)."""
     D, X, g = _information(c, es)
     return np.asarray(D - np.asarray(X.multiply(X).T @ g).ravel(), dtype=np.float64)
 
@@ -1581,9 +1581,9 @@ def refit_with_nondetections(
        detection curves (:func:`fusion.model.thresholds.fit_detection_curves`) on the
        leave-one-out predictor of the current fit (:func:`loo_predictor`), imputation of the
        missing thresholds, joint fit; ``threshold_rounds`` rounds, each starting its curves
-       from the previous round's censored fit (measured on the docs/simulation.md censor simulation
-       with hidden thresholds: mean threshold error +0.17, +0.08, +0.06, +0.05 after rounds
-       1–4). Mode ``estimated-thresholds``.
+       from the previous round's censored fit (measured on the censor simulation of
+       docs/simulation.md with hidden thresholds: mean threshold error +0.17, +0.08, +0.06, +0.05
+       after rounds 1–4). Mode ``estimated-thresholds``.
     2. Otherwise, with stored thresholds or clipped readings: one joint fit
        (:func:`fit_censored_stations`). Mode ``known-thresholds``.
     3. Otherwise, with ``safe_cells_fallback`` and a ``refit``: detection curves from the

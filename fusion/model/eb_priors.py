@@ -19,13 +19,13 @@ The hyperparameters come from the moments of log s² (Smyth 2004, §6.2):
 with d0 = ∞ (and s0² = exp ē) when the right-hand side is ≤ 0, i.e. when the observed spread
 of log s² is no larger than sampling alone explains. ψ is the digamma function, ψ' the
 trigamma function, inverted by Smyth's Newton iteration (:func:`trigamma_inverse`). Only
-stations with d_i ≥ 5 enter the fit (docs/estimator.md §5).
+stations with d_i ≥ 5 enter the fit (docs/estimator.md §5.1).
 
 Biases
 ------
 Biases relative to the anchor get the prior b_i ~ N(μ0, τ_b²). Given unshrunk estimates b̂_i with
 sampling variances v_i, the moment estimator over stations with at least 30 events (Σγ ≥ 30) is
-τ̂_b² = max(0, mean (b̂_i − μ0)² − mean v_i) (docs/estimator.md §5). In the fit the prior is the
+τ̂_b² = max(0, mean (b̂_i − μ0)² − mean v_i) (docs/estimator.md §5.2). In the fit the prior is the
 ridge 1/τ_b² on the normal matrix, so the fitted b̂ are already shrunk by τ_b²/(τ_b² + v_i);
 :func:`fit_bias_prior` undoes that shrinkage before taking moments (otherwise the moment
 iteration would drift to 0) [derived].
@@ -61,7 +61,7 @@ __all__ = [
 #: 1/Φ⁻¹(3/4) = 1.4826 (Hampel 1974 [from memory]; common practice).
 MAD_TO_SD = float(1.0 / special.ndtri(0.75))
 
-#: Prior degrees of freedom before the first empirical-Bayes fit (docs/estimator.md §3, "config").
+#: Prior degrees of freedom before the first empirical-Bayes fit (docs/estimator.md §5.1).
 DEFAULT_D0 = 4.0
 #: Prior bias variance before the first empirical-Bayes fit, magnitude units squared: a weak
 #: prior (SD 1 magnitude unit) that only keeps the normal matrix positive definite.
@@ -183,7 +183,7 @@ def fit_variance_prior(
     d : array_like, shape (K,)
         Residual degrees of freedom d_i.
     min_dof : float, default=5.0
-        Only stations with d_i >= this enter the fit (docs/estimator.md §5).
+        Only stations with d_i >= this enter the fit (docs/estimator.md §5.1).
     min_stations : int, default=3
         Fewer eligible stations return ``None`` (keep the current prior).
 
@@ -233,7 +233,7 @@ def fit_bias_prior(
     current_tau_b2 : float, default=inf
         The τ_b² the biases were fitted with; the shrinkage τ²/(τ² + v) is undone first.
     min_events : float, default=30.0
-        docs/estimator.md §5: n_i >= 30.
+        docs/estimator.md §5.2: n_i >= 30.
 
     Returns
     -------
@@ -260,7 +260,7 @@ def initial_error_variance(
     *,
     max_events: int = 20_000,
 ) -> float:
-    """Start value s0² = median over events of (1.4826·MAD_j)² (docs/estimator.md §3, "init").
+    """Start value s0² = median over events of (1.4826·MAD_j)² (docs/estimator.md §3, start values).
 
     Uses events with at least 3 readings when there are any, else events with 2; the MAD of
     each event is taken about its median (vectorized: one sort by (event, value) per pass).

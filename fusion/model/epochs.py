@@ -40,9 +40,9 @@ False alarms (measured)
 Under the model the monitored x are iid N(0, 1), so the in-control average run length is that of
 a CUSUM on N(0, 1): for k = 0.5 the Siegmund (1985) approximation
 ARL0 = (e^{2kb} − 2kb − 1)/(2k²), b = h + 1.166 [from memory], gives 938 readings one-sided and
-469 two-sided at h = 5, 9.6e3 two-sided at h = 8. On the §13 simulator (K = 40, N = 4000, true
-parameters as the fit, no step, seeds 0–3, ~1,260 readings per station) the detector raised
-1.66 false alarms per 1,000 readings at h = 5 and 0.089 at h = 8 (Siegmund: 2.13 and 0.105;
+469 two-sided at h = 5, 9.6e3 two-sided at h = 8. On the simulator of docs/simulation.md (K = 40,
+N = 4000, true parameters as the fit, no step, seeds 0–3, ~1,260 readings per station) the detector
+raised 1.66 false alarms per 1,000 readings at h = 5 and 0.089 at h = 8 (Siegmund: 2.13 and 0.105;
 restarts and burn-ins remove monitored readings). With 1 % outlier cells: 2.05 (h = 5) and
 0.19 (h = 8) with clip = 3, against 2.29 and 1.29 without clipping.
 **At the default h = 5 a station with ~1,000 readings a year raises about two false alarms a

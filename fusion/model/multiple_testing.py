@@ -1,7 +1,7 @@
 """False-discovery-rate control for families of tests: Benjamini–Hochberg and Benjamini–Yekutieli.
 
-Used by the correlated-pair search (docs/pairs.md): every station pair with enough shared events is
-one test, and the family is controlled at FDR level q.
+Used by the correlated-pair search (docs/pairs.md §3): every station pair with enough shared events
+is one test, and the family is controlled at FDR level q.
 
 For m p-values sorted p_(1) ≤ … ≤ p_(m), the step-up procedure rejects H_(1) … H_(r) with
 r = max{i : p_(i) ≤ i q / (m c_m)}; equivalently it rejects every hypothesis whose adjusted
@@ -13,7 +13,7 @@ is at most q. Benjamini & Hochberg (1995) use c_m = 1; their procedure controls 
 independence and under positive regression dependence (Benjamini & Yekutieli 2001, Thm 1.2).
 Benjamini & Yekutieli (2001, Thm 1.3) use c_m = Σ_{i≤m} 1/i, which controls the FDR under any
 dependence (for m = 10, c_m = 2.928968). Tests sharing a station are dependent, so BY is the
-conservative choice for alarms (docs/pairs.md).
+conservative choice for alarms (docs/pairs.md §3).
 
 References
 ----------

@@ -3,29 +3,29 @@
 Two stations whose errors share a term (co-located sites, a common path) break the independence
 the GLS weights assume, and a plain residual correlation cannot find them: with all-station GLS
 residuals and independent errors E[r_kj r_lj] = −V_j, a null correlation of −1/(n−1) for n
-equal stations (docs/pairs.md, worked example E4).
+equal stations (docs/pairs.md §1, worked example E4).
 
 Leave-two-out statistic
 -----------------------
 For a pair (k, l) and each event j holding both and at least one other station, the reference
 M̃_j is the GLS estimate over S_j without k, l and their current flagged partners, with variance
-Ṽ_j. With y_ij = m_ij − b̂_i and u_kj = y_kj − M̃_j [derived, docs/pairs.md]:
+Ṽ_j. With y_ij = m_ij − b̂_i and u_kj = y_kj − M̃_j [derived, docs/pairs.md §2]:
 
     E[u_k u_l] = c_kl + Ṽ_j,   Var u_k = σ_k² + Ṽ_j,
     q_j = u_kj u_lj − Ṽ_j,     ĉ_kl = Σ γ_j q_j / Σ γ_j,   ρ̂ = ĉ/(σ_k σ_l),
     T_self = Σ γ_j q_j / sqrt(Σ γ_j² (q_j − ĉ)²)                        (the test statistic)
     T_model = Σ γ_j q_j / sqrt(Σ γ_j² [(σ_k² + Ṽ_j)(σ_l² + Ṽ_j) + Ṽ_j²])  (reported only)
 
-With γ ≡ 1, T_self = Σq/sqrt(Σq² − (Σq)²/n), as in the design. T ≈ N(0, 1) under H0: c_kl = 0;
+With γ ≡ 1, T_self = Σq/sqrt(Σq² − (Σq)²/n), as in docs/pairs.md §2. T ≈ N(0, 1) under H0: c_kl = 0;
 p = 2(1 − Φ(|T|)). Pairs with fewer than ``min_shared`` eligible events are not tested.
 
 Partner exclusion and flagging
 ------------------------------
 A correlated partner left inside the reference of another pair induces a negative covariance
-(the design's round-0 simulation flagged three false negative-ρ pairs). The search therefore
-iterates (at most ``max_rounds`` passes, no partners at the start): test all pairs, control the
-family by Benjamini–Hochberg at ``fdr_q``, then choose partners among the rejected pairs with
-ρ̂ > 0 **greedily by significance** (smallest p first, ties by larger |T|): a pair is taken
+(the first pass of the planning simulation flagged three false negative-ρ pairs). The search
+therefore iterates (at most ``max_rounds`` passes, no partners at the start): test all pairs,
+control the family by Benjamini–Hochberg at ``fdr_q``, then choose partners among the rejected pairs
+with ρ̂ > 0 **greedily by significance** (smallest p first, ties by larger |T|): a pair is taken
 only if neither station is already in a taken pair, so each station is in at most one flagged
 pair (the block structure :class:`fusion.network.gls_blocks.PairCovariance` needs). A rejected
 positive
@@ -33,7 +33,7 @@ pair that loses to a more significant pair of one of its stations is kept in the
 status ``paired_elsewhere``. The next pass builds references without those partners (and with
 their covariance in the other references); the search stops when the partner set repeats.
 
-The covariance handed on is shrunk and capped (docs/network-magnitude.md §2; docs/pairs.md):
+The covariance handed on is shrunk and capped (docs/pairs.md §4):
 c = ĉ·n/(n + n0) with n the effective number of events (Σγ)²/Σγ², then
 |c| ≤ 0.9·min(σ_k², σ_l²), i.e. |ρ| ≤ 0.9·min(σ_k/σ_l, σ_l/σ_k), which keeps both GLS weights
 of the pair positive (a larger ρ gives the noisier station a negative weight, example E3).
@@ -42,12 +42,12 @@ Robust weights
 --------------
 A fitter's Student-t weight ω_ij (docs/estimator.md §6) comes from a leave-one-out residual whose
 reference holds the tested stations k and l; using every ω in the references therefore makes the
-reference depend on e_k and e_l and biases ĉ negative. Measured on the §13 simulator without
-pairs (K = 40, N = 4000, true parameters, ν = 4 weights, seeds 5 and 6): mean T −0.72…−0.75
-with all weights, −0.49…−0.52 with ω capped at 1, −0.03…+0.01 when only rows with ω < 0.3 keep
-their weight; with 1 % outlier cells and no weights +0.41…+0.42 (outliers inflate the true
-reference variance above Ṽ), with the rule −0.02…+0.03. So only gross outliers
-(ω < ``outlier_weight`` = 0.3, the design's outlier-listing level) are down-weighted
+reference depend on e_k and e_l and biases ĉ negative. Measured on the simulator of
+docs/simulation.md without pairs (K = 40, N = 4000, true parameters, ν = 4 weights, seeds 5 and 6):
+mean T −0.72…−0.75 with all weights, −0.49…−0.52 with ω capped at 1, −0.03…+0.01 when only rows with
+ω < 0.3 keep their weight; with 1 % outlier cells and no weights +0.41…+0.42 (outliers inflate the
+true reference variance above Ṽ), with the rule −0.02…+0.03. So only gross outliers
+(ω < ``outlier_weight`` = 0.3, the outlier-listing level of docs/estimator.md §6) are down-weighted
 (s² = σ²/ω) in the references, and an event where k or l itself is a gross outlier does not
 enter the pair's statistic (such a product only adds heavy-tailed noise); every other row counts
 fully. Ṽ is the sandwich variance a'Σa/(1'a)² of the reference with the model covariance Σ and
@@ -118,7 +118,7 @@ __all__ = [
 ]
 
 #: Largest |ρ| allowed for a flagged pair, as a fraction of min(σ_k/σ_l, σ_l/σ_k)
-#: (docs/network-magnitude.md §2).
+#: (docs/pairs.md §4).
 RHO_CAP_FRACTION = 0.9
 #: Confidence level of the reported interval on ρ (fraction).
 CI_LEVEL = 0.95
@@ -151,7 +151,7 @@ class PairStatus(StrEnum):
 
     FLAGGED = "flagged"
     PAIRED_ELSEWHERE = "paired_elsewhere"  # rejected, ρ̂ > 0, a station is in a stronger pair
-    NEGATIVE = "negative"  # rejected with ρ̂ ≤ 0: not used as a partner (docs/pairs.md)
+    NEGATIVE = "negative"  # rejected with ρ̂ ≤ 0: not used as a partner (docs/pairs.md §3)
     NOT_SIGNIFICANT = "not_significant"
 
 
@@ -282,7 +282,7 @@ def fisher_z_interval(
 def min_shared_for_power(rho: ArrayLike, alpha: float = 0.05, power: float = 0.8) -> NDArray[Any]:
     """Shared events needed to detect correlation ρ, two-sided level α, given power (E11).
 
-    n = ceil(((z_{1−α/2} + z_power)/atanh ρ)² + 3) (docs/pairs.md, Fisher-z approximation).
+    n = ceil(((z_{1−α/2} + z_power)/atanh ρ)² + 3) (docs/pairs.md §6, Fisher-z approximation).
 
     Parameters
     ----------
@@ -723,10 +723,10 @@ def detect_correlated_pairs(
         n0 of the shrinkage ĉ·n/(n + n0) of the covariance handed on.
     outlier_weight : float, default=0.3
         Rows whose ω is below this are down-weighted in the references; the others count
-        fully (the design's outlier listing level, docs/estimator.md §6).
+        fully (the outlier-listing level of docs/estimator.md §6).
     fdr_method : {'bh', 'by'}, default='bh'
         Benjamini–Hochberg, or Benjamini–Yekutieli for an alarm level valid under any
-        dependence between pair tests (docs/pairs.md; :mod:`fusion.model.multiple_testing`).
+        dependence between pair tests (docs/pairs.md §3; :mod:`fusion.model.multiple_testing`).
 
     Returns
     -------

@@ -51,7 +51,7 @@ class StationParameters:
     sigma2 : ndarray, shape (K,)
         Moderated error variance σ̃_i², magnitude units squared (docs/estimator.md §5).
     prior_dominated : ndarray of bool, shape (K,)
-        d_i < d0: the prior carries more information than the data (docs/estimator.md §5).
+        d_i < d0: the prior carries more information than the data (docs/estimator.md §5.3).
     pairs : PairCovariance
         Flagged pairs with the (shrunk, capped) covariance used in the network estimate.
     tau_b2 : float

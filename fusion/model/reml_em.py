@@ -29,7 +29,7 @@ One iteration (an ECM sequence, docs/estimator.md §4):
 4. **σ-step.** σ_i² = (d0 s0² + Σ_j γ_j (q_ij + V_j)) / (d0 + Σ_j γ_j), q_ij = r_ij² for
    unweighted rows and ω_ij r_ij²/κ_ν for robust rows; flagged covariances
    c_kl = Σ γ (r_kj r_lj + V_j)/Σ γ over shared events, shrunk by n/(n + n0) and capped at
-   |ρ| <= 0.9 min(σ_k/σ_l, σ_l/σ_k) (docs/network-magnitude.md §2; docs/pairs.md).
+   |ρ| <= 0.9 min(σ_k/σ_l, σ_l/σ_k) (docs/pairs.md §4).
 5. Every ``eb_every`` iterations (and once after the first) the priors (d0, s0², τ_b²) are
    refreshed by :mod:`fusion.model.eb_priors`.
 
@@ -37,23 +37,23 @@ Convergence: the estimated distances to the fixed point of b and log σ (the las
 max|Δb|, max|Δ log σ| scaled by ρ/(1 − ρ), ρ the observed linear rate, at least the step itself)
 fall below ``tol_bias`` and ``tol_log_sigma``, with the priors stable (σ of stations in
 bipartite components, which the data do not identify, get the plain step test); otherwise a
-:class:`~stations.errors.ConvergenceWarning` at ``max_iter``. The plain step test of
-docs/estimator.md §3 stops a slowly converging fit (small networks with very unequal σ, ρ ≈ 0.96)
-about 3 % short in σ (measured), hence the rate correction. When the observed rate exceeds 0.6, log
-σ² is extrapolated from three consecutive iterates by SQUAREM (Varadhan & Roland 2008, scheme S3,
-the acceleration docs/estimator.md §4 names); the following EM step is the stabilising step, and an
-overshoot (a next step more than twice the last) halves the largest extrapolation allowed.
-Extrapolation changes the path, not the fixed point.
+:class:`~stations.errors.ConvergenceWarning` at ``max_iter``. The plain step test
+(docs/estimator.md §7.2) stops a slowly converging fit (small networks with very unequal σ,
+ρ ≈ 0.96) about 3 % short in σ (measured), hence the rate correction. When the observed rate exceeds
+0.6, log σ² is extrapolated from three consecutive iterates by SQUAREM (Varadhan & Roland 2008,
+scheme S3, the acceleration docs/estimator.md §4 names); the following EM step is the stabilising
+step, and an overshoot (a next step more than twice the last) halves the largest extrapolation
+allowed. Extrapolation changes the path, not the fixed point.
 
-**Scale consistency of the robust σ-step** (a deliberate refinement of docs/estimator.md §3 step 4,
-which writes Σγω(r² + V)). With Gaussian errors the Student-t EM scale converges to about 0.69 σ²
-for ν = 4 (the fixed point c = E[(ν+1)X²/(ν + X²/c)], X ~ N(0, 1), computed by quadrature), so σ̂/σ
-≈ 0.83 and the event SEs shrink (measured on the §13 simulator: median σ̂/σ 0.85, 68 %
-coverage 0.59). In the diagonal case r_ij = (1 − w_ij)(y_ij − M̂_j^(−i)), so
-r_ij² = σ_i²(1 − w_ij) u_ij² [derived], E[ω r²] = κ_ν (σ_i² − V_j) with κ_ν = E[ω(X)X²]
-(0.7863 for ν = 4), and E[ω r²/κ_ν + V_j] = σ_i² at the Gaussian truth (Fisher consistency of
-a weighted scale estimate: Huber 1981 [from memory]). ``scale_consistency=False`` gives the
-design's literal form for comparison.
+**Scale consistency of the robust σ-step** (a deliberate refinement of the textbook step,
+docs/estimator.md §7.1, which writes Σγω(r² + V)). With Gaussian errors the Student-t EM scale
+converges to about 0.69 σ² for ν = 4 (the fixed point c = E[(ν+1)X²/(ν + X²/c)], X ~ N(0, 1),
+computed by quadrature), so σ̂/σ ≈ 0.83 and the event SEs shrink (measured on the simulator of
+docs/simulation.md: median σ̂/σ 0.85, 68 % coverage 0.59). In the diagonal case
+r_ij = (1 − w_ij)(y_ij − M̂_j^(−i)), so r_ij² = σ_i²(1 − w_ij) u_ij² [derived],
+E[ω r²] = κ_ν (σ_i² − V_j) with κ_ν = E[ω(X)X²] (0.7863 for ν = 4), and
+E[ω r²/κ_ν + V_j] = σ_i² at the Gaussian truth (Fisher consistency of a weighted scale estimate:
+Huber 1981 [from memory]). ``scale_consistency=False`` gives the textbook form for comparison.
 
 Fixed point [derived]: without robust weights the σ-step settles where
 σ_i² = (d0 s0² + d_i s_i²)/(d0 + d_i) with d_i = Σγ(1 − w_ij) and s_i² = Σγ r²/d_i, i.e. at
@@ -124,8 +124,8 @@ __all__ = ["RemlEmFit", "fit_reml_em", "t_weight_consistency"]
 
 Solver = Literal["auto", "direct", "pcg"]
 
-#: Largest |ρ| of a flagged pair as a fraction of min(σ_k/σ_l, σ_l/σ_k) (docs/network-magnitude.md
-#: §2).
+#: Largest |ρ| of a flagged pair as a fraction of min(σ_k/σ_l, σ_l/σ_k)
+#: (docs/pairs.md §4).
 RHO_CAP = 0.9
 #: Inside one event a 2×2 block must stay positive definite after robust reweighting:
 #: |c| <= this × sqrt(s_k² s_l²).
@@ -180,8 +180,8 @@ class RemlEmFit:
         b̂_i relative to the anchor; units without data get the prior mean μ0.
     bias_var : ndarray
         Var(b̂_i): diagonal of the top-left block of the bordered inverse (relative to the
-        anchor); τ_b² for units without data. With ``bias_cov`` None it is the docs/estimator.md §5
-        approximation σ_i²/Σγω(1 − w) (with the ridge).
+        anchor); τ_b² for units without data. With ``bias_cov`` None it is the approximation
+        σ_i²/Σγω(1 − w) of docs/estimator.md §5.2 (with the ridge).
     bias_cov : ndarray, shape (K, K), or None
         Full Cov(b̂) when K <= ``dense_cov_max``.
     sigma2 : ndarray
@@ -197,7 +197,7 @@ class RemlEmFit:
     outlier_rate : ndarray
         Fraction of the unit's readings with robust weight below ``outlier_weight``.
     prior_dominated : ndarray of bool
-        d_i < d0 (docs/estimator.md §5).
+        d_i < d0 (docs/estimator.md §5.3).
     uncalibrated : ndarray of bool
         Unit in a component without anchor, or without data (:mod:`fusion.model.connectivity`).
     event_magnitude, event_variance : ndarray, shape (N,)
@@ -896,7 +896,7 @@ def _pair_step(
 
 
 def _diag_data_information(d: _Design, w: _Weights, nm: _Normal) -> NDArray[np.float64]:
-    """Diagonal of Σ_j γ_j L_j: Σγ W_ii − Σ g_j a_ij² (docs/estimator.md §5: Var b̂ ≈ 1/this)."""
+    """Diagonal of Σ_j γ_j L_j: Σγ W_ii − Σ g_j a_ij² (docs/estimator.md §5.2: Var b̂ ≈ 1/this)."""
     a = d.a
     return np.asarray(nm.D - d.per_station(nm.g[d.ev] * a * a), dtype=np.float64)
 
@@ -933,7 +933,7 @@ class ConvergenceTracker:
     the largest of the last five observed step ratios below 1, taken only between consecutive
     regular EM steps (not across an extrapolation or a change of the priors, where the ratio
     says nothing about the rate), capped at 0.99; with ρ <= 1/2 the test is the plain step test
-    of docs/estimator.md §3.
+    of docs/estimator.md §7.2.
     """
 
     def __init__(self) -> None:
@@ -1073,12 +1073,12 @@ def fit_reml_em(
         ... and max|Δ log σ| fall below these (and the priors are stable).
     prior : EBPrior, optional
         Starting hyperparameters; default d0 = 4, s0² = median event (1.4826 MAD)², a weak
-        τ_b² = 1 (docs/estimator.md §3 "config", :mod:`fusion.model.eb_priors`).
+        τ_b² = 1 (docs/estimator.md §5, :mod:`fusion.model.eb_priors`).
     eb_every : int, default=10
         Refresh the priors after the second iteration, then every ``eb_every`` iterations
         and at convergence; 0 keeps ``prior`` fixed.
     shrink_n0 : float, default=20.0
-        Pair covariances are shrunk by n/(n + n0) (docs/pairs.md).
+        Pair covariances are shrunk by n/(n + n0) (docs/pairs.md §4).
     unit_station : ndarray of str, shape (K,), optional
         Station id of each unit (reference-set membership); default: the part of the unit id
         before ``@``.
@@ -1089,10 +1089,10 @@ def fit_reml_em(
         Σ n_j² <= 5e6 and K <= 1000 (measured in ``bench/fit_speed.py``).
     scale_consistency : bool, default=True
         Divide robust-weighted squared residuals by κ_ν (module docstring); False gives the
-        literal docs/estimator.md §3 step 4.
+        textbook σ-step (docs/estimator.md §7.1).
     dense_cov_max : int, default=3000
         Up to this many units the exact Cov(b̂) is returned (one more sparse product and a
-        dense inverse); beyond, Var(b̂) is the docs/estimator.md §5 approximation.
+        dense inverse); beyond, Var(b̂) is the approximation of docs/estimator.md §5.2.
     outlier_weight : float, default=0.3
         Rows with ω below this count as outliers (docs/estimator.md §6).
     accelerate : bool, default=True

@@ -1,6 +1,6 @@
 """Seeded synthetic station networks with known truth (docs/simulation.md), and the oracle estimate.
 
-The generator follows the simulation protocol of the design:
+The generator follows the protocol of docs/simulation.md:
 
 - K stations uniform in a square box; some stations form co-located pairs whose errors share a
   common N(0, 1) term with weights (√ρ, √(1 − ρ)), so Cov(e_k, e_l) = ρ σ_k σ_l;
@@ -247,7 +247,8 @@ def oracle_estimate(
     """GLS event magnitudes with the true biases and true error covariance (docs/simulation.md).
 
     Uses detections only (clipped rows excluded) and the true per-row bias (including a bias
-    step). Outlier terms are not part of the model covariance, as in the design's oracle.
+    step). Outlier terms are not part of the model covariance, as in the oracle of
+    docs/simulation.md §3.
 
     Returns
     -------

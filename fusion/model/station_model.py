@@ -178,7 +178,7 @@ class StationModel(ParamsMixin):
     threshold_rounds : int, default=3
         Rounds of threshold estimation and joint fit.
     safe_cells_fallback : bool, default=False
-        Without any threshold, fit on safe cells only (docs/censoring.md §8 fallback).
+        Without any threshold, fit on safe cells only (the fallback of docs/censoring.md §8).
 
     Attributes
     ----------

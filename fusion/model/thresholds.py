@@ -1,4 +1,4 @@
-"""Station detection thresholds when the noise level is not stored (docs/censoring.md §4, issue 7).
+"""Station detection thresholds when the noise level is not stored (docs/censoring.md §7, issue 7).
 
 The censored fit (:mod:`fusion.model.censored_fit`) needs, for every non-detection, the noise
 threshold t_ij on the station-magnitude scale. Where the store gives it (``noise_threshold``,
@@ -31,7 +31,7 @@ not enter the predictor), Δ the epicentral distance in km and Δ_ref = 10 km. T
   stations that see every event above the catalogue minimum get t̂ ≈ M_min + b̂ >= t: a
   conservative (too high) threshold, harmless for the safe-cell rule below.
 
-**Fallback without thresholds** (docs/censoring.md §4): fit station parameters only on **safe
+**Fallback without thresholds** (docs/censoring.md §8): fit station parameters only on **safe
 cells**, detections with M̂_j^(−i) + b̂_i >= t̂_i(Δ) + 2σ̃_i (:func:`safe_cells`). Selecting on the
 leave-one-out estimate does not select on e_ij, and selecting on M̂ does not bias b̂ or σ̂
 (docs/estimator.md §6); residual bias comes only from the other stations' censoring. Small events

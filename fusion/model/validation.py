@@ -3,7 +3,7 @@
 No true event magnitude is known, so the checks compare the model with itself on data it was not
 fitted to, or with the distributions it implies.
 
-Held-out station prediction [derived, docs/validation.md]
+Held-out station prediction [derived, docs/validation.md §2]
 -------------------------------------------------
 Let M̃_j^(−i) be any network estimate built without station i, with parameters fitted on an
 earlier, disjoint period. If e_ij is independent of the other stations' errors,
@@ -132,7 +132,7 @@ class SplitHalfResult:
         Pearson correlation of the two bias vectors over stations fitted in both halves.
     expected_correlation : float
         τ_b²/sqrt((τ_b² + mean Var b̂_a)(τ_b² + mean Var b̂_b)); equals τ_b²/(τ_b² + Var b̂)
-        for equal halves (docs/validation.md).
+        for equal halves (docs/validation.md §3).
     tau_b2 : float
         The τ_b² used (magnitude units²).
     n_stations : int
@@ -278,7 +278,7 @@ def held_out_prediction(
     level: float = 0.95,
     random_state: int | np.random.Generator | None = None,
 ) -> HeldOutResult:
-    """Score network estimates by predicting each held-out station reading (docs/validation.md).
+    """Score network estimates by predicting each held-out station reading (docs/validation.md §2).
 
     Parameters
     ----------
@@ -503,7 +503,7 @@ def split_half_agreement(
 def split_half_sigma_check(
     sigma2_a: ArrayLike, sigma2_b: ArrayLike, dof_a: ArrayLike, dof_b: ArrayLike
 ) -> tuple[float, float]:
-    """KS test of σ̂²_a/σ̂²_b against F(d_a, d_b) across stations (docs/validation.md).
+    """KS test of σ̂²_a/σ̂²_b against F(d_a, d_b) across stations (docs/validation.md §3).
 
     Parameters
     ----------

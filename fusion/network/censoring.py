@@ -443,7 +443,7 @@ def fit_censored(
         Newton steps at most. Events started near their maximum take 3–6 (docs/censoring.md §3); an
         event whose one detection lies far above its non-detections' thresholds starts far
         off, where ℓ is nearly quadratic only asymptotically and each step undershoots; such
-        events take up to about 10 (measured on the docs/simulation.md censor simulation).
+        events take up to about 10 (measured on the censor simulation of docs/simulation.md).
     tol : float, default=1e-7
         An event has converged when its Newton step is below this (magnitude units).
 

@@ -14,8 +14,8 @@ Leaving station i out costs O(1) per row from the event sums (docs/network-magni
     influence_ij = M̂_j − M̂^(−i),   z_ij = (y_ij − M̂^(−i)) / sqrt(s_i² + V^(−i)).
 
 A row of a flagged pair whose partner observed the same event leaves out the whole 2×2 block
-(both rows), as the design asks ("remove correlated blocks whole"); its z then compares the row
-with the estimate from the independent stations only.
+(both rows), as docs/network-magnitude.md §7 asks (correlated readings leave together); its z then
+compares the row with the estimate from the independent stations only.
 """
 
 from __future__ import annotations

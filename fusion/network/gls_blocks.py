@@ -25,7 +25,8 @@ __all__ = ["PairCovariance", "pair_partner_rows", "precision_row_weights"]
 class PairCovariance:
     """Flagged pairs as arrays: stations ``k[p]``, ``l[p]`` and error covariance ``c[p]``.
 
-    Each station may appear in at most one pair (docs/pairs.md builds partner maps that way).
+    Each station may appear in at most one pair (the pair search, docs/pairs.md §3, builds partner
+    maps that way).
 
     Parameters
     ----------

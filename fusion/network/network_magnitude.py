@@ -12,7 +12,7 @@ weights of an event's detections sum to 1 and say how much each corrected statio
 moves M̂_j (∂M̂_j/∂m_ij). ``residual`` is the corrected station magnitude minus the event's
 reported magnitude (QuakeML's station-magnitude residual, after the station correction).
 
-Rules (docs/network-magnitude.md):
+Rules (docs/network-magnitude.md §5, §6, §10):
 
 - **Robust weights.** Events with n_j ≥ max(3, ``robust_min_stations``) detections get
   Student-t weights ω = min(1, (ν + 1)/(ν + u²)) from the leave-one-station-out (LOSO) residual

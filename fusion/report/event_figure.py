@@ -4,7 +4,7 @@ network magnitude with its interval, and the plain mean, as PNG or as a self-con
 Left panel: corrected station magnitudes m − b̂ against epicentral distance (or, without
 distances, in order of size), each with the interval ± z·s_i at the event's confidence level,
 z = Φ⁻¹((1 + level)/2); marker **area proportional to the station's weight** in the network
-magnitude (hollow markers for negative weights, docs/network-magnitude.md §2 E3); raw station
+magnitude (hollow markers for negative weights, docs/network-magnitude.md §5, E3); raw station
 magnitudes as grey dots; non-detections as triangles at their noise threshold (corrected like the
 readings); outliers (robust weight below 0.3) as crosses. The network magnitude is the black line
 with its interval shaded; the plain mean of the raw station magnitudes is the dashed orange line.

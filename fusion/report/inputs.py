@@ -20,11 +20,11 @@ bias             yes      b̂_i, relative to the anchor (docs/model.md §3)
 bias_se          yes      sqrt(Var b̂_i), >= 0
 sigma            yes      moderated error SD σ̃_i, > 0 (docs/estimator.md §5)
 epoch_start/end  no       bounds of the unit; NaT (or absent) is open
-dof              no       effective degrees of freedom d_i of σ̃_i (docs/estimator.md §5): the σ
-interval n_events         no       readings the fit used
+dof              no       degrees of freedom d_i of σ̃_i (docs/estimator.md §5.1): the σ interval
+n_events         no       readings the fit used
 weight_sum       no       Σ_j γ_j over those readings (time-weighted count)
 outlier_rate     no       fraction of the fit's readings with robust weight below 0.3
-prior_dominated  no       d_i < d0 (docs/estimator.md §5)
+prior_dominated  no       d_i < d0 (docs/estimator.md §5.3)
 uncalibrated     no       unit in a component without anchor (docs/model.md §3)
 partner          no       unit or station id of a flagged correlated partner, else empty
 ================ ======== ==========================================================================

@@ -176,7 +176,7 @@ def join_rows(inputs: ReportInputs) -> JoinedRows:
     # Detections that were likely only because their error was high (the network magnitude
     # plus the station bias within 2 sigma of the reading's noise threshold) have residuals
     # biased upward by the selection, not by the station: leave them out of the station
-    # statistics (the "safe cells" of docs/censoring.md §9, fallback). Unknown thresholds keep the
+    # statistics (docs/censoring.md §9). Unknown thresholds keep the
     # row.
     threshold = _column(co, "threshold", np.nan)
     u_safe = np.where(unit >= 0, unit, 0)

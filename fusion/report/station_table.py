@@ -302,8 +302,9 @@ def station_reliability_table(
         A reading with robust weight below this is an outlier (docs/estimator.md §6).
     outlier_rate_alert : float, default=0.02
         ``many-outliers`` above this window outlier rate. Under the Gaussian model a reading
-        gets ω < 0.3 (ν = 4) only beyond |u| ≈ 3.56, probability 0.04 %; the design's
-        simulations plant 1 % outlier cells. 2 % is chosen here (common practice, no source).
+        gets ω < 0.3 (ν = 4) only beyond |u| ≈ 3.56, probability 0.04 %; the simulator of
+        docs/simulation.md plants 1 % outlier cells. 2 % is chosen here (common practice, no
+        source).
     joined : JoinedRows, optional
         Pre-joined rows (the report passes its own; computed if absent).
 

@@ -6,11 +6,11 @@ A: "sustained" Lg amplitude (the third-largest peak), nm, vertical, WWSSN-SP sim
 the Lg group-velocity window 3.6-3.2 km/s at periods 0.7-1.3 s; r: epicentral distance, km;
 γ: regional anelastic attenuation coefficient, 1/km, which has no default (it is regional).
 
-Status: the equation is **from memory** of the IASPEI 2013 recommendations (docs/check-values.md
-§1); it is consistent with Herrmann & Kijko (1983), whose constant 2.96 - 0.833 - 3 = -0.873 matches
-the rounded -0.87 (abstract verified, formula from memory). The period range 0.7-1.3 s is from
-memory too and is checked only where a period is given. Verified sources name only "regional
-distances" for the range, so only r > 0 is enforced.
+Status: the equation is **from memory** of the IASPEI 2013 recommendations
+(docs/check-values.md §1); it is consistent with Herrmann & Kijko (1983), whose constant
+2.96 - 0.833 - 3 = -0.873 matches the rounded -0.87 (abstract verified, formula from memory). The
+period range 0.7-1.3 s is from memory too and is checked only where a period is given. Verified
+sources name only "regional distances" for the range, so only r > 0 is enforced.
 
 References
 ----------

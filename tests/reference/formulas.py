@@ -1,9 +1,9 @@
 """Check values for the station-magnitude formulas and geometry, each block with its source.
 
-Status labels as in /work/shared/CHECKS.md: **verified** (read in the named source or run in the
+Status labels as in docs/check-values.md: **verified** (read in the named source or run in the
 named library), **computed** (from a verified formula, recomputed here), **from memory**,
-**common practice, no source**. Tolerances follow the printed precision (CHECKS.md §9): 1e-4
-for values printed with four decimals, +/-0.1 for Q look-ups (the two digitisations of the
+**common practice, no source**. Tolerances follow the printed precision (docs/check-values.md §9):
+1e-4 for values printed with four decimals, +/-0.1 for Q look-ups (the two digitisations of the
 Gutenberg-Richter chart differ by 0.1).
 """
 
@@ -12,7 +12,8 @@ from __future__ import annotations
 from typing import Final
 
 # ---------------------------------------------------------------------------------------------
-# CHECKS.md §3, worked examples (computed from the §1 formulas; tolerance 1e-4, printed to 4 dp).
+# docs/check-values.md §3, worked examples (computed from the §1 formulas; tolerance 1e-4, printed
+# to 4 dp).
 # ---------------------------------------------------------------------------------------------
 WORKED_TOL: Final = 1e-4
 
@@ -25,8 +26,8 @@ ML_IASPEI: Final = (
     (5000.0, 500.0, 5.5498),
 )
 
-#: mb: (A nm, T s, distance deg, depth km, Q used by CHECKS, mb). #5, #6: mb form + G&R Q
-#: (shallow table, h = 0: Q(50) = Q(80) = 6.7).
+#: mb: (A nm, T s, distance deg, depth km, Q of docs/check-values.md §3, mb). #5, #6: mb form +
+#: G&R Q (shallow table, h = 0: Q(50) = Q(80) = 6.7).
 MB: Final = (
     (100.0, 1.0, 50.0, 0.0, 6.7, 5.7000),
     (50.0, 0.8, 80.0, 0.0, 6.7, 5.4959),
@@ -37,8 +38,8 @@ MB_BB: Final = ((1000.0, 60.0, 0.0, 6.8, 6.0018),)
 
 #: Ms_20: (A nm, T s, distance deg, Ms_20). #8 [IASPEI-2005]; #9 J. C. Lahr's "Surface Wave
 #: Magnitude" sheet (verified table): A = 6.939373 um gives Ms = 5 at 20 deg, T = 20 s; the same
-#: sheet lists 1.516142 um at 50 deg, 0.479767 um at 100 deg, 0.219883 um at 160 deg (CHECKS.md
-#: §3, "More from the same Lahr sheet"), all Ms_20 = 5.0000.
+#: sheet lists 1.516142 um at 50 deg, 0.479767 um at 100 deg, 0.219883 um at 160 deg
+#: (docs/check-values.md §3, "More from the same Lahr sheet"), all Ms_20 = 5.0000.
 MS_20: Final = (
     (1000.0, 20.0, 50.0, 4.8193),
     (6939.373, 20.0, 20.0, 5.0000),
@@ -48,14 +49,14 @@ MS_20: Final = (
 )
 
 #: Ms_BB: (Vmax nm/s, distance deg, T s or NaN, Ms_BB, tolerance). #10 [H&O-2010], 1e-4;
-#: Lahr's velocity column (20 deg, Ms = 5 -> 2.178963 um/s at T = 20 s) gives 4.9998 (CHECKS.md
-#: §3: "Lahr's velocities are rounded"), also 1e-4.
+#: Lahr's velocity column (20 deg, Ms = 5 -> 2.178963 um/s at T = 20 s) gives 4.9998
+#: (docs/check-values.md §3: "Lahr's velocities are rounded"), also 1e-4.
 MS_BB: Final = (
     (500.0, 10.0, float("nan"), 3.8608),
     (2178.963, 20.0, 20.0, 4.9998),
 )
 
-#: mb_Lg: (A nm, r km, gamma 1/km, mb_Lg). #11, #12: formula from memory (CHECKS.md §1).
+#: mb_Lg: (A nm, r km, gamma 1/km, mb_Lg). #11, #12: formula from memory (docs/check-values.md §1).
 MB_LG: Final = (
     (100.0, 300.0, 0.0, 3.1934),
     (100.0, 300.0, 0.001, 3.3194),
@@ -65,9 +66,9 @@ MB_LG: Final = (
 MW_IASPEI: Final = ((1.0e17, 5.2667), (3.98e17, 5.6666))
 
 # ---------------------------------------------------------------------------------------------
-# CHECKS.md §5: pyrocko 2026.6.2 moment_tensor.moment_to_magnitude (Hanks & Kanamori 1979),
-# source read and run (verified): (M0 N·m, HK79 Mw, IASPEI Mw). Offset 0.0333 at every moment.
-# pyrocko is not installed here; the values are CHECKS.md's printed output.
+# docs/check-values.md §5: pyrocko 2026.6.2 moment_tensor.moment_to_magnitude (Hanks & Kanamori
+# 1979), source read and run (verified): (M0 N·m, HK79 Mw, IASPEI Mw). Offset 0.0333 at every
+# moment. pyrocko is not installed here; the values are those printed in docs/check-values.md §5.
 # ---------------------------------------------------------------------------------------------
 MW_HK79: Final = (
     (1.0e13, 2.6333, 2.6000),
@@ -77,8 +78,9 @@ MW_HK79: Final = (
 MW_HK79_OFFSET: Final = 0.0333
 
 # ---------------------------------------------------------------------------------------------
-# CHECKS.md §1 notes and §4 table: Hutton & Boore (1987) original form (abstract verified) and the
-# IASPEI form, for A in mm on Wood-Anderson 2080 (computed): (A mm, R km, HB87, IASPEI).
+# docs/check-values.md §1 notes and §4 table: Hutton & Boore (1987) original form (abstract
+# verified) and the IASPEI form, for A in mm on Wood-Anderson 2080 (computed): (A mm, R km, HB87,
+# IASPEI).
 # ---------------------------------------------------------------------------------------------
 HB87_VALUES: Final = (
     (1.0, 100.0, 3.0000, 3.0009),
@@ -89,9 +91,10 @@ HB87_VALUES: Final = (
 )
 
 # ---------------------------------------------------------------------------------------------
-# CHECKS.md §4: obspy 1.5.1 obspy.signal.invsim.estimate_magnitude(WOODANDERSON, 2*A_mm/1000,
-# timespan, R) is Bakun & Joyner (1984) eq. 3 (source read and run, verified); identical to the
-# formula to 1e-9 for timespans 0.05, 0.4, 2.0 s. Printed values: (A mm, R km, BJ84).
+# docs/check-values.md §4: obspy 1.5.1 obspy.signal.invsim.estimate_magnitude(WOODANDERSON,
+# 2*A_mm/1000, timespan, R) is Bakun & Joyner (1984) eq. 3 (source read and run, verified);
+# identical to the formula to 1e-9 for timespans 0.05, 0.4, 2.0 s. Printed values: (A mm, R km,
+# BJ84).
 # ---------------------------------------------------------------------------------------------
 OBSPY_TIMESPANS_S: Final = (0.05, 0.4, 2.0)
 OBSPY_BJ84_TOL: Final = 1e-9
@@ -103,7 +106,7 @@ BJ84_PRINTED: Final = (
 )
 
 # ---------------------------------------------------------------------------------------------
-# CHECKS.md §2: Gutenberg & Richter (1956) Q for PZ, as listed on J. C. Lahr's "Computing
+# docs/check-values.md §2: Gutenberg & Richter (1956) Q for PZ, as listed on J. C. Lahr's "Computing
 # body-wave (mb) magnitude" page (verified). Tolerance +/-0.1 (the digitisations differ by 0.1).
 # ---------------------------------------------------------------------------------------------
 Q_TOL: Final = 0.1
@@ -113,7 +116,7 @@ Q_CHART_H0: Final = (5.9, 6.1, 6.6, 6.4, 6.7, 6.9, 6.9, 6.7, 7.0, 7.3, 7.9)
 Q_CHART_H500: Final = (6.4, 6.4, 6.3, 6.3, 6.2, 6.2, 6.3, 6.2, 6.7, 7.2, 7.8)
 
 # ---------------------------------------------------------------------------------------------
-# CHECKS.md §1 notes (computed): the Ms distance term 1.66 log10(100) = 3.32 and
+# docs/check-values.md §1 notes (computed): the Ms distance term 1.66 log10(100) = 3.32 and
 # 1.66 log10(20) = 2.15971; tabulated by Lahr's "Surface-wave magnitude distance factor" page.
 # ---------------------------------------------------------------------------------------------
 MS_DISTANCE_TERM: Final = ((100.0, 3.32), (20.0, 2.15971))

@@ -1,21 +1,21 @@
 """Check values for correlated pairs, FDR control, CUSUM epochs and label-free validation.
 
-Each block names its source and status with the labels of /work/shared/CHECKS.md: **verified**
+Each block names its source and status with the labels of docs/check-values.md: **verified**
 (read in the source or run in the named library), **computed** (from a verified formula; the
-tests recompute it), **from memory** (not re-read), **derived** (short derivation in DESIGN.md,
+tests recompute it), **from memory** (not re-read), **derived** (short derivation in docs/,
 re-checked in review).
 """
 
 from __future__ import annotations
 
-# --- DESIGN.md §9 table / §14 E11: overlap for 80 % power -------------------------------------
+# --- docs/pairs.md §6 table / docs/worked-examples.md E11: overlap for 80 % power -----------------
 # n = ceil(((z_{1−α/2} + z_{0.8}) / atanh ρ)² + 3). Status: computed (the tests recompute it
 # with scipy.stats.norm.ppf); the Fisher-z approximation itself is Fisher (1921) [from memory].
 E11_RHO = (0.2, 0.3, 0.5, 0.7)
 E11_N_ALPHA_005 = (194, 85, 30, 14)
 E11_N_ALPHA_0001 = (419, 182, 60, 26)
 
-# --- CHECKS.md §7: Benjamini–Yekutieli divisor --------------------------------------------------
+# --- docs/check-values.md §7: Benjamini–Yekutieli divisor -----------------------------------------
 # Σ_{i≤10} 1/i = 2.928968. Status: verified (statsmodels `fdrcorrection` documentation) and
 # computed. Tolerance 1e-6 (printed to 6 decimals).
 BY_DIVISOR_M10 = 2.928968
@@ -45,7 +45,7 @@ BH1995_N_REJECT_BH = 4
 BH1995_N_REJECT_BONFERRONI = 3
 
 
-# --- DESIGN.md §14 E4: null correlation of residuals, n equal stations ---------------------------
+# --- docs/worked-examples.md E4: null correlation of residuals, n equal stations ------------------
 # All-station GLS residuals: −1/(n−1); leave-two-out residuals: +1/(n−1). Status: derived
 # (Cov(r) = σ²(I − J/n); leave-two-out Cov(u_k, u_l) = Var(ē_O) = σ²/(n−2)); the tests
 # recompute both from the covariance matrices with numpy.

@@ -173,7 +173,7 @@ def test_several_failures_join_into_one_reason() -> None:
 
 
 def test_non_detection_without_magnitude_is_kept() -> None:
-    """Censored cell (docs/model.md §2): detected=False, magnitude null, threshold optional."""
+    """Censored cell (docs/model.md §2.1): detected=False, magnitude null, threshold optional."""
     records, rejected = _validate(
         [_row(detected=False, magnitude=np.nan, noise_threshold=1.7, channel="")]
     )

@@ -10,10 +10,10 @@ Check values and their sources:
   scipy.optimize in tests/fusion/network/test_censoring.py);
 - without censoring the fixed point is the REML-EM's — derived (docs/estimator.md §4: unprofiled EM
   and profiled REML-EM share their fixed point);
-- the censor simulation (docs/simulation.md generator): event bias, b RMSE and σ̂/σ of
-  docs/censoring.md §4, status [sim] (the design's own throwaway simulation, indicative only), with
-  the docs/simulation.md acceptance target |bias| <= 0.03; detected-only bias positive at small M —
-  Ringdal (1976), BSSA 66(3):789; constants shared with
+- the censor simulation (the generator of docs/simulation.md): event bias, b RMSE and σ̂/σ of
+  docs/censoring.md §10, status [sim] (the planning simulation, indicative only), with
+  the acceptance target of docs/simulation.md §4 |bias| <= 0.03; detected-only bias positive at
+  small M — Ringdal (1976), BSSA 66(3):789; constants shared with
   tests/fusion/network/test_network_magnitude.py in tests/reference/network.py.
 """
 
@@ -67,7 +67,7 @@ SIM_JOINT_SIGMA_RATIO = (0.95, 1.05)
 
 @functools.lru_cache(maxsize=2)
 def _censor(seed: int = 7) -> tuple[SimulatedNetwork, RemlEmFit, CensoredStationFit]:
-    """docs/simulation.md censor mode, K = 40, N = 4000; REML-EM start and the joint fit."""
+    """Censor mode (docs/simulation.md §2), K = 40, N = 4000; REML-EM start and the joint fit."""
     net = simulate_network(SimulationConfig(mode="censor"), seed=seed)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -328,13 +328,13 @@ def test_censor_simulation_recovers_the_stations() -> None:
 
 
 @pytest.mark.parametrize(
-    ("shift", "design_bias"),
+    ("shift", "planned_bias"),
     [(0.1, ref.SIM_THRESHOLD_PLUS_BIAS), (-0.1, ref.SIM_THRESHOLD_MINUS_BIAS)],
 )
-def test_thresholds_wrong_by_a_tenth(shift: float, design_bias: float) -> None:
+def test_thresholds_wrong_by_a_tenth(shift: float, planned_bias: float) -> None:
     """Every threshold off by ±0.1, in the fit and in the estimate: on the events with two or
-    more detections (the design's event set) the mean bias has the sign of the shift and stays
-    within the design's +0.066 / −0.051 plus the margin of tests/reference/network.py."""
+    more detections (the planning simulation's event set) the mean bias has the sign of the shift
+    and stays within the planned +0.066 / −0.051 plus the margin of tests/reference/network.py."""
     net, start, _ = _censor()
     obs = net.observations
     shifted = dataclasses.replace(obs, threshold=obs.threshold + shift)
@@ -349,7 +349,7 @@ def test_thresholds_wrong_by_a_tenth(shift: float, design_bias: float) -> None:
     sel = (n_det >= 2) & np.isfinite(err)
     overall = float(np.mean(err[sel]))
     assert np.sign(overall) == np.sign(shift)
-    assert abs(overall) <= abs(design_bias) + ref.SIM_THRESHOLD_MARGIN
+    assert abs(overall) <= abs(planned_bias) + ref.SIM_THRESHOLD_MARGIN
 
 
 # -- anchors, forgetting, validation ---------------------------------------------------------------

@@ -79,7 +79,7 @@ def test_variance_prior_infinite_when_no_spread() -> None:
 
 
 def test_variance_prior_needs_dof_five_and_three_stations() -> None:
-    """docs/estimator.md §5: only stations with d_i >= 5 enter; too few eligible keep the prior."""
+    """docs/estimator.md §5.1: only stations with d_i >= 5 enter; too few of them keep the prior."""
     assert fit_variance_prior([0.04, 0.05, 0.06], [4.9, 4.0, 10.0]) is None
     assert fit_variance_prior([0.04, 0.05, 0.06], [5.0, 6.0, 10.0]) is not None
 

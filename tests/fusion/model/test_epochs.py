@@ -281,7 +281,7 @@ def test_false_alarm_rate_without_step_is_as_documented() -> None:
 
 
 def test_model_reference_is_the_literal_cusum() -> None:
-    # With reference="model" the first segment monitors z itself (docs/epochs.md as written).
+    # With reference="model" the first segment monitors z itself (docs/epochs.md §1).
     rng = np.random.default_rng(5)
     obs, rows = _series_obs([120], rng)
     z = np.full(obs.n_obs, np.nan)

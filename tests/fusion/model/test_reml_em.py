@@ -59,8 +59,9 @@ def _sim(mode: str, seed: int, n_events: int = 2000, pairs: bool = False) -> Sim
 def test_e8_naive_sequence_and_reml_fixed_point() -> None:
     """E8: the naive map σ_i² ← E r_i² collapses; the REML-EM σ-step leaves any split unchanged.
 
-    The naive loop below is written from docs/estimator.md §2: with M_j free, E r_i² = σ_i² −
-    2w_iσ_i² + Σ_k w_k²σ_k² (GLS weights w); docs/worked-examples.md prints its first six steps.
+    The naive loop below is written from docs/estimator.md §2: with M_j free,
+    E r_i² = σ_i² − 2w_iσ_i² + Σ_k w_k²σ_k² (GLS weights w); docs/worked-examples.md prints its
+    first six steps.
     """
     s = np.array(ref.E8_START)
     for expected in ref.E8_SEQUENCE:
@@ -174,7 +175,9 @@ def test_robust_scale_is_consistent_for_gaussian_errors() -> None:
 
 
 def test_outliers_are_down_weighted_and_listed() -> None:
-    """A station with 8 % gross errors (±1.5) gets an outlier rate near 8 % (ω < 0.3, §5.3).
+    """A station with 8 % gross errors (±1.5) gets an outlier rate near 8 % (ω < 0.3).
+
+    Outlier listing: docs/estimator.md §6.
 
     (With far more contamination the t model absorbs it into a larger σ instead: ω of a ±1.5
     error at σ̂ ≈ 0.8 is about 0.7.)
@@ -357,7 +360,7 @@ def test_outputs_and_prior_dominated() -> None:
     assert fit.event_magnitude.shape == (N,)
     assert np.array_equal(fit.prior_dominated, fit.dof < fit.prior.d0)
     assert np.all(np.isnan(fit.event_magnitude[~fit.event_used]))
-    # Var(b̂) ≈ σ²/Σγω(1 − w) (docs/estimator.md §5) for well-observed stations, within 15 %.
+    # Var(b̂) ≈ σ²/Σγω(1 − w) (docs/estimator.md §5.2) for well-observed stations, within 15 %.
     approx = fit.sigma2 / fit.dof
     good = fit.dof > 100
     assert np.allclose(fit.bias_var[good], approx[good], rtol=0.15)

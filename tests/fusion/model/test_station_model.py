@@ -101,7 +101,7 @@ def test_fit_returns_self_and_keeps_params() -> None:
     ],
 )
 def test_parameter_validation(param: str, value: object, rule: str) -> None:
-    """Conventions item 3: "The 'x' parameter of StationModel must be ... Got ... instead."."""
+    """docs/conventions.md item 3: "The 'x' parameter of StationModel must be ... Got ..."."""
     est = _quick(**{param: value})
     with pytest.raises(ConfigError, match=rf"The '{param}' parameter of StationModel must be"):
         est.fit(_net(1).observations)
@@ -241,8 +241,7 @@ def test_empty_window_raises() -> None:
         _quick(window_days=10.0).fit(_net(1).observations, as_of="2024-01-01")
 
 
-# --- forgetting and unit matching (docs/rolling-fit.md §1)
-# -----------------------------------------------------
+# --- forgetting and unit matching (docs/rolling-fit.md §1) ----------------------------------------
 
 
 def test_time_weights() -> None:

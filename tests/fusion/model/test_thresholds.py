@@ -1,4 +1,6 @@
-"""Detection thresholds when the noise level is not stored, and the fallback (docs/censoring.md §4).
+"""Detection thresholds when the noise level is not stored, and the fallback.
+
+See docs/censoring.md §7 and §8.
 
 Check values and their sources:
 
@@ -6,8 +8,8 @@ Check values and their sources:
   IRLS uses the expected information, as the module does), transformed to (t0, t1, s) by the
   delta method;
 - truncated-normal mean of one detection — scipy.stats.truncnorm (reference library);
-- the docs/simulation.md censor generator: thresholds t0_i + 1.2 log10(Δ/10 km), t0_i ~ U(0.3, 0.9)
-  (the simulation's truth; docs/simulation.md);
+- the censor generator of docs/simulation.md: thresholds t0_i + 1.2 log10(Δ/10 km),
+  t0_i ~ U(0.3, 0.9) (the simulation's truth; docs/simulation.md);
 - the expected detected-only bias against the simulated one — derived (truncated normal mean,
   Johnson, Kotz & Balakrishnan 1994 [from memory]) and checked on the simulation;
 - the Gutenberg–Richter memorylessness behind the detections-only curve — Aki (1965) [from

@@ -31,8 +31,8 @@ def clean_net():  # type: ignore[no-untyped-def]
 
 
 def test_held_out_identity_recovers_true_mse(clean_net) -> None:  # type: ignore[no-untyped-def]
-    # docs/validation.md (derived; [sim] 0.0051/0.0051, 0.0072/0.0073, 0.0130/0.0131): held-out MSE
-    # minus σ² equals each method's true MSE E[(M̃^(−i) − M)²]. The simulator knows M.
+    # docs/validation.md §2 (derived; [sim] 0.0051/0.0051, 0.0072/0.0073, 0.0130/0.0131): held-out
+    # MSE minus σ² equals each method's true MSE E[(M̃^(−i) − M)²]. The simulator knows M.
     net = clean_net
     obs = net.observations
     res = held_out_prediction(net.bias, net.sigma**2, net.pairs, obs, random_state=1)
@@ -88,8 +88,8 @@ def test_paired_bootstrap_se_matches_ratio_estimator(clean_net) -> None:  # type
 
 
 def test_correlated_pair_is_held_out_as_a_whole() -> None:
-    # docs/validation.md caveat: with a flagged partner in the event, no method uses the partner to
-    # predict its pair mate: changing the partner's reading leaves the mate's errors unchanged.
+    # docs/validation.md §2 caveat: with a flagged partner in the event, no method uses the partner
+    # to predict its pair mate: changing the partner's reading leaves the mate's errors unchanged.
     net = simulate_network(SimulationConfig(n_stations=12, n_events=300), seed=4)
     obs = net.observations
     res0 = held_out_prediction(net.bias, net.sigma**2, net.pairs, obs, replicates=0)
@@ -152,8 +152,8 @@ def test_held_out_needs_events_with_three_stations() -> None:
 
 
 def test_split_half_correlation_matches_its_expectation() -> None:
-    # docs/validation.md: corr(b̂_odd, b̂_even) ≈ τ²/(τ² + Var b̂) for independent halves (derived;
-    # 0.04/(0.04 + 0.01) = 0.8 here).
+    # docs/validation.md §3: corr(b̂_odd, b̂_even) ≈ τ²/(τ² + Var b̂) for independent halves
+    # (derived; 0.04/(0.04 + 0.01) = 0.8 here).
     rng = np.random.default_rng(9)
     K, tau2, v = 2000, 0.04, 0.01
     b = rng.normal(0, np.sqrt(tau2), K)
@@ -216,8 +216,8 @@ def test_chi2_quadratic_form_with_pairs_matches_direct_inverse() -> None:
 
 
 def test_scatter_checks_under_the_model_and_misspecified(clean_net) -> None:  # type: ignore[no-untyped-def]
-    # Under the model χ²_j/(n_j − 1) follows χ²_{n−1}/(n−1) (docs/network-magnitude.md §2;
-    # docs/validation.md).
+    # Under the model χ²_j/(n_j − 1) follows χ²_{n−1}/(n−1) (docs/network-magnitude.md §4;
+    # docs/validation.md §4).
     net = clean_net
     good = scatter_checks(net.observations, net.bias, net.sigma**2, pairs=net.pairs)
     assert good.ks_pvalue > 0.01

@@ -7,9 +7,9 @@ before the network's station correction. Nothing here knows a true event magnitu
 are the label-free ones of docs/validation.md and two outside comparisons:
 
 - split halves (odd and even events): corr(b̂_odd, b̂_even) against τ_b²/(τ_b² + Var b̂)
-  [derived, docs/validation.md], bounded below through Fisher's z (Fisher 1915; SE of atanh r is
+  [derived, docs/validation.md §3], bounded below through Fisher's z (Fisher 1915; SE of atanh r is
   1/sqrt(n − 3), from memory);
-- held-out station prediction (docs/validation.md) on a rolling origin: on 1 January of each year
+- held-out station prediction (docs/validation.md §2) on a rolling origin: on 1 January of each year
   the model is fitted on the data before it with the shipped configuration (120-day half-life,
   360-day window, warm start from the previous year's model, as the nightly run does) and
   predicts every reading of that year from the other stations; GLS against the plain mean,
@@ -100,7 +100,8 @@ def test_split_half_biases_agree_as_expected(uuss: Uuss) -> None:
     tables = [f.station_table_.set_index("station_id") for f in fits]
     ids = uuss.counts.index[uuss.counts >= MIN_EVENTS]
     a, b = (t.loc[ids] for t in tables)
-    tau_b2 = float(np.mean([f.parameters_.tau_b2 for f in fits]))  # the fits' own prior (§5.2)
+    # the fits' own prior (docs/estimator.md §5.2)
+    tau_b2 = float(np.mean([f.parameters_.tau_b2 for f in fits]))
     res = split_half_agreement(
         a["bias"], b["bias"], a["bias_se"] ** 2, b["bias_se"] ** 2, tau_b2=tau_b2
     )
@@ -127,8 +128,8 @@ class RollingScore:
 
     ``mse`` is the plain mean square; ``mean_error`` its level part; ``level_free`` the mean
     square after removing each method's mean error (one common offset per method, as the demo
-    scores against truth: a network magnitude's level is arbitrary until anchored, docs/model.md
-    §3). Magnitude units and their squares.
+    scores against truth: a network magnitude's level is arbitrary until anchored,
+    docs/model.md §3). Magnitude units and their squares.
     """
 
     mse: dict[str, float]
@@ -171,7 +172,8 @@ def _evaluation_set(
 
 def _rolling_held_out(uuss: Uuss, *, detect_epochs: bool) -> RollingScore:
     """Fit on 1 January of each year 1999-2020 with the shipped [learn]/[pairs]/[epochs]
-    settings and warm start, predict that year's readings (docs/validation.md protocol per year)."""
+    settings and warm start, predict that year's readings (docs/validation.md §2 protocol per
+    year)."""
     obs, cfg = uuss.obs, uuss.cfg
     t_row = obs.event_time[obs.event]
     rows_all, previous, fits = [], None, 0

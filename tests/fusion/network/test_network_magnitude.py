@@ -282,7 +282,10 @@ def test_e5_through_fuse_events() -> None:
 
 
 def test_e5_detected_only_and_flagged_uncorrected() -> None:
-    """Without use_nondetections: mean 2.1, SE 0.1443, flag censoring-uncorrected (§11.2)."""
+    """Without use_nondetections: mean 2.1, SE 0.1443, flag censoring-uncorrected.
+
+    docs/network-magnitude.md §9.
+    """
     obs, params = _e5_obs()
     fused = fuse_events(obs, params)
     ev = fused.events.iloc[0]
@@ -526,7 +529,7 @@ def test_simulation_mar_rmse_and_coverage(seed: int) -> None:
     inside = (fused.events["ci_low"] <= net.magnitude) & (net.magnitude <= fused.events["ci_high"])
     lo, hi = ref.SIM_COVERAGE_68
     assert lo <= inside.mean() <= hi
-    # Beats the plain mean and the median (docs/simulation.md §4 acceptance).
+    # Beats the plain mean and the median (acceptance, docs/simulation.md §4).
     for col in ("plain_mean", "median"):
         other = fused.events[col].to_numpy() - net.bias.mean()
         assert rmse < np.sqrt(np.mean((other - net.magnitude) ** 2))
@@ -565,14 +568,15 @@ def test_simulation_censor_tobit_removes_the_bias(censor_net: SimulatedNetwork) 
 
 
 @pytest.mark.parametrize(
-    ("shift", "design_bias"),
+    ("shift", "planned_bias"),
     [(0.1, ref.SIM_THRESHOLD_PLUS_BIAS), (-0.1, ref.SIM_THRESHOLD_MINUS_BIAS)],
 )
 def test_simulation_censor_threshold_error(
-    censor_net: SimulatedNetwork, shift: float, design_bias: float
+    censor_net: SimulatedNetwork, shift: float, planned_bias: float
 ) -> None:
-    """Thresholds off by ±0.1: the bias has the sign of the shift and stays within the design's
-    reported size (+0.066 / −0.051) plus a margin, in every bin with ≥ 100 events."""
+    """Thresholds off by ±0.1: the bias has the sign of the shift and stays within the planned
+    size of docs/censoring.md §10 (+0.066 / −0.051) plus a margin, in every bin with ≥ 100
+    events."""
     obs = censor_net.observations
     shifted = dataclasses.replace(obs, threshold=obs.threshold + shift)
     fused = fuse_events(shifted, _true_params(censor_net), use_nondetections=True)
@@ -580,7 +584,7 @@ def test_simulation_censor_threshold_error(
     assert np.sign(overall) == np.sign(shift)
     for bias, n in _bin_bias(fused, censor_net.magnitude):
         if n >= 100:
-            assert abs(bias) <= abs(design_bias) + ref.SIM_THRESHOLD_MARGIN
+            assert abs(bias) <= abs(planned_bias) + ref.SIM_THRESHOLD_MARGIN
 
 
 # -- vectorisation and invariances ---------------------------------------------------------------
@@ -792,7 +796,7 @@ def test_yellowstone_network_corrections_reproduce_station_ml_means() -> None:
         epoch_end=end,
         bias=-ep["Corr"].to_numpy(),
         bias_var=np.zeros(K),
-        sigma2=np.full(K, 0.21**2),  # HB87 residual SD (check-values §8); any equal value works
+        sigma2=np.full(K, 0.21**2),  # HB87 residual SD, docs/check-values.md §8
         prior_dominated=np.zeros(K, bool),
         pairs=PairCovariance.empty(K),
         tau_b2=0.04,

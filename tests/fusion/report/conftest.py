@@ -1,8 +1,9 @@
 """Shared inputs of the report tests: a small simulated network with planted problems.
 
-Network: ``fusion.model.simulation.simulate_network`` (docs/simulation.md generator), 24 stations,
-1,500 events, three correlated pairs (stations 0-1, 2-3, 4-5 with ρ 0.4, 0.5, 0.6), a +0.4 bias step
-on station 10 at mid-year, 1 % outlier cells. Planted on top of the generator's magnitudes:
+Network: ``fusion.model.simulation.simulate_network`` (the generator of docs/simulation.md), 24
+stations, 1,500 events, three correlated pairs (stations 0-1, 2-3, 4-5 with ρ 0.4, 0.5, 0.6), a +0.4
+bias step on station 10 at mid-year, 1 % outlier cells. Planted on top of the generator's
+magnitudes:
 
 - station 12: a distance trend, +0.5 magnitude units per decade of epicentral distance;
 - station 13: saturation, −0.6 per magnitude unit above M 1.5 (large amplitudes read low).

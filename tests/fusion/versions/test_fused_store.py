@@ -65,7 +65,7 @@ def _config(n_stations: int = 12) -> SimulationConfig:
 
 
 def _fuse(shift: float = 0.0) -> FusedMagnitudes:
-    """Fused magnitudes of a seeded synthetic network (docs/simulation.md generator); the station
+    """Fused magnitudes of a seeded synthetic network (generator: docs/simulation.md); the station
     parameters are the true ones, ``shift`` moves every bias (so every magnitude moves by
     -shift)."""
     net = simulate_network(_config(), seed=3)

@@ -255,7 +255,7 @@ def test_wrong_or_missing_unit_is_rejected_with_the_unit_error_text() -> None:
 
 
 def test_non_detection_amplitude_becomes_the_noise_threshold() -> None:
-    """docs/model.md §2: the noise amplitude goes through the same formula into noise_threshold."""
+    """docs/model.md §2.1: the noise amplitude goes through the same formula to noise_threshold."""
     frame = _records(
         dict(detected=False, amplitude=0.01, amplitude_unit="mm_wa", hypocentral_distance_km=100.0)
     )

@@ -39,7 +39,10 @@ def test_ml_iaspei_worked_examples(amplitude_nm: float, r_km: float, expected: f
 
 
 def test_ml_anchor_one_millimetre_at_100_km() -> None:
-    """Richter's anchor, ML 3 for 1 mm at 100 km: 3.0009 IASPEI, 3.0000 HB87 (check-values §8)."""
+    """Richter's anchor, ML 3 for 1 mm at 100 km: 3.0009 IASPEI, 3.0000 HB87.
+
+    docs/check-values.md §8.
+    """
     assert float(ml(1.0, 100.0, unit="mm_wa")) == pytest.approx(3.0009, abs=ref.WORKED_TOL)
     assert float(ml(1.0, 100.0, unit="mm_wa", correction=HB87_MM)) == pytest.approx(3.0, abs=1e-12)
 
@@ -55,8 +58,8 @@ def test_hutton_boore_and_iaspei_forms(
     assert float(ml(a_mm, r_km, unit="mm_wa", correction=HB87)) == pytest.approx(
         iaspei, abs=ref.WORKED_TOL
     )
-    # the two differ by the rounding of -2.09 only: 0.0009 at every distance (docs/check-values.md
-    # §1)
+    # the two differ by the rounding of -2.09 only: 0.0009 at every distance
+    # (docs/check-values.md §1)
     gap = ml(a_mm, r_km, unit="mm_wa") - ml(a_mm, r_km, unit="mm_wa", correction=HB87_MM)
     assert float(gap) == pytest.approx(0.00094, abs=2e-5)
 

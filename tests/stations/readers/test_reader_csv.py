@@ -53,7 +53,7 @@ def _with(column: str, value: str) -> str:
 
 
 def test_template_has_a_detection_and_a_non_detection() -> None:
-    """The shipped template reads without rejects; row 2 is a censored cell (docs/model.md §2)."""
+    """The shipped template reads without rejects; row 2 is a censored cell (docs/model.md §2.1)."""
     result = read_csv(template_path())
     assert result.rejected.empty
     rec = result.records
