@@ -121,6 +121,7 @@ from fusion.model.fit_steps import (
     raw_variance,
     refresh_due,
     refresh_prior,
+    student_t_weight,
     t_weight_consistency,
 )
 from fusion.model.forgetting import WarmStart, match_previous_units, unit_station_ids, warm_start
@@ -816,8 +817,7 @@ def _robust_weights(
             np.copyto(u2, r * r / np.take(sigma2, d.st), where=hard)
             notok = np.where(hard, d.nonrobust_row, notok)
     del s2
-    u2 += nu
-    omega = np.divide(nu + 1.0, u2, out=u2)
+    omega = student_t_weight(u2, nu, out=u2, overwrite_u2=True)
     np.copyto(omega, 1.0, where=notok)
     if literal:
         return omega, omega
