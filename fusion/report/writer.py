@@ -32,6 +32,8 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from fusion.advisory import ADVISORY
+from fusion.model.diagnostics import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
+from fusion.network.summaries import censoring_summary
 from fusion.report.event_figure import event_figure_png, event_picture_from_tables
 from fusion.report.figures import (
     StationPanelData,
@@ -49,8 +51,6 @@ from fusion.report.station_table import (
     station_reliability_table,
     write_station_table,
 )
-from fusion.report.trends import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
-from fusion.workflows.dry_run import censoring_summary
 from stations.errors import ConfigError
 
 __all__ = ["ReportFiles", "write_station_report"]
@@ -778,7 +778,7 @@ def _drift_rows(inputs: ReportInputs) -> str:
 
 
 def _censoring_text(ev: pd.DataFrame) -> str:
-    """One paragraph on the use of non-detections (see ``fusion.workflows.dry_run``)."""
+    """One paragraph on the use of non-detections (:mod:`fusion.network.summaries`)."""
     if not len(ev):
         return ""
     c = censoring_summary(ev)

@@ -52,9 +52,9 @@ from fusion.model.station_model import StationModel
 from fusion.network.censoring import CensoredEventData, fit_censored
 from fusion.network.gls_blocks import PairCovariance
 from fusion.network.network_magnitude import fuse_events
+from fusion.network.summaries import censoring_summary
 from fusion.observations import ObservationSet
 from fusion.settings import CensoringConfig, EpochConfig, LearnConfig, PairConfig
-from fusion.workflows.dry_run import censoring_summary
 from stations.errors import ConfigError, ConvergenceWarning, InsufficientDataError
 from tests.reference import network as ref
 

@@ -1,4 +1,4 @@
-"""Grouped weighted residual trends (fusion.report.trends) against statsmodels and real data."""
+"""Grouped weighted residual trends (fusion.model.diagnostics) against statsmodels and real data."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from fusion.report.trends import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
+from fusion.model.diagnostics import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
 from tests.datasets import YELLOWSTONE
 
 DATA = YELLOWSTONE

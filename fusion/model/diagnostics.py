@@ -1,5 +1,9 @@
-"""Weighted straight-line trends of residuals, one per station unit, all units at once.
+"""Per-station residual diagnostics: trends, mean residual, SD interval; all units at once.
 
+These are library statistics: the station reliability report (:mod:`fusion.report`) calls them,
+and so can any other caller holding residuals per station unit.
+
+**Trends.**
 A station magnitude corrected by a constant bias should leave residuals with no trend against
 epicentral distance or against event magnitude. A slope against log10(distance) points to a
 distance-correction (−log A0) problem at that station; a slope against magnitude points to
@@ -34,7 +38,15 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import stats
 
-__all__ = ["TREND_T_ALARM", "GroupedSlope", "chance_flag_rate", "grouped_wls_slope"]
+__all__ = [
+    "TREND_T_ALARM",
+    "GroupedMean",
+    "GroupedSlope",
+    "chance_flag_rate",
+    "grouped_weighted_mean",
+    "grouped_wls_slope",
+    "sigma_interval",
+]
 
 #: |t| above this flags a trend (rule stated in the module docstring and in the report).
 TREND_T_ALARM = 3.0
@@ -168,3 +180,99 @@ def chance_flag_rate(n_rows: NDArray[np.int64], t_alarm: float = TREND_T_ALARM) 
     if n.shape[0] == 0:
         return 0.0
     return float(np.sum(2.0 * stats.t.sf(t_alarm, n - 2.0)))
+
+
+@dataclass(frozen=True, slots=True)
+class GroupedMean:
+    """Robust-weighted mean residual per group (:func:`grouped_weighted_mean`).
+
+    Attributes
+    ----------
+    mean : ndarray, shape (G,)
+        Σ w r / Σ w; NaN for a group without rows.
+    sd : ndarray, shape (G,)
+        Weighted SD sqrt(n/(n − 1) · Σ w (r − r̄)² / Σ w); NaN with fewer than 2 rows.
+    t : ndarray, shape (G,)
+        mean / SE, SE = sqrt(Σ w (r − r̄)² / ((n − 1) Σ w)); NaN with fewer than
+        max(``min_rows``, 2) rows.
+    n : ndarray of int, shape (G,)
+        Rows of the group.
+    """
+
+    mean: NDArray[np.float64]
+    sd: NDArray[np.float64]
+    t: NDArray[np.float64]
+    n: NDArray[np.int64]
+
+
+def grouped_weighted_mean(
+    group: NDArray[np.int64],
+    residual: NDArray[np.float64],
+    weight: NDArray[np.float64],
+    n_groups: int,
+    *,
+    min_rows: int = 20,
+) -> GroupedMean:
+    """Weighted mean residual, its SD and t ratio for every group at once.
+
+    Under the station model each residual has mean 0, so |t| > :data:`TREND_T_ALARM` says the
+    unit's bias has moved since the fit (or its residuals are skewed by detection,
+    docs/censoring.md). Weighted mean and variance with frequency-like weights (the weighted
+    SD with the n/(n − 1) correction: common practice, no source).
+
+    Parameters
+    ----------
+    group : ndarray of int, shape (n,)
+        Group (station unit) of each row, 0..G−1; rows with a negative code are left out.
+    residual : ndarray, shape (n,)
+        Residuals, magnitude units.
+    weight : ndarray, shape (n,)
+        Weights > 0 (robust weights; 1 where none).
+    n_groups : int
+        G.
+    min_rows : int, default=20
+        Fewer rows give no t ratio (NaN).
+
+    Returns
+    -------
+    GroupedMean
+    """
+    a = group >= 0
+    g, r, w = group[a], residual[a], weight[a]
+    sw = np.bincount(g, weights=w, minlength=n_groups)
+    n_a = np.bincount(g, minlength=n_groups)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        r_mean = np.bincount(g, weights=w * r, minlength=n_groups) / sw
+        dr = r - r_mean[g]
+        ss = np.bincount(g, weights=w * dr * dr, minlength=n_groups)
+        r_sd = np.sqrt(ss / np.maximum(n_a - 1, 1) * n_a / sw)
+        r_se = np.sqrt(ss / np.maximum(n_a - 1, 1) / sw)
+        r_t = r_mean / r_se
+    few = n_a < max(int(min_rows), 2)
+    return GroupedMean(
+        mean=np.where(n_a > 0, r_mean, np.nan),
+        sd=np.where(n_a > 1, r_sd, np.nan),
+        t=np.where(few, np.nan, r_t),
+        n=n_a.astype(np.int64),
+    )
+
+
+def sigma_interval(
+    sigma: NDArray[np.float64], dof: NDArray[np.float64], level: float
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Chi-square interval of an SD estimated with ``dof`` degrees of freedom.
+
+    (d s²/χ²_d(1 − α/2), d s²/χ²_d(α/2)) for σ², square-rooted; α = 1 − level. NaN where
+    dof is not > 0. (The textbook interval for a normal variance, e.g. NIST/SEMATECH
+    e-Handbook of Statistical Methods §7.2.6.1 [from memory: section number].)
+    """
+    d = np.asarray(dof, dtype=np.float64)
+    ok = np.isfinite(d) & (d > 0.0)
+    dd = np.where(ok, d, 1.0)
+    alpha = 1.0 - float(level)
+    hi_q = stats.chi2.ppf(1.0 - alpha / 2.0, dd)
+    lo_q = stats.chi2.ppf(alpha / 2.0, dd)
+    low = np.where(ok, sigma * np.sqrt(dd / hi_q), np.nan)
+    with np.errstate(divide="ignore"):
+        high = np.where(ok, sigma * np.sqrt(dd / lo_q), np.nan)
+    return low, high
