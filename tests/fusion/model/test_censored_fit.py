@@ -34,12 +34,12 @@ from scipy import integrate, stats
 from fusion.model.anchors import Anchor, AnchorKind, ReferenceEvents
 from fusion.model.censored_fit import (
     CensoredStationFit,
-    NondetectionMode,
     censoring_rows,
     fit_censored_stations,
     loo_predictor,
     nondetection_moments,
 )
+from fusion.model.nondetection_modes import NondetectionMode
 from fusion.model.parameters import StationParameters
 from fusion.model.reml_em import RemlEmFit, fit_reml_em
 from fusion.model.simulation import (

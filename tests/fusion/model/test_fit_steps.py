@@ -101,3 +101,14 @@ def test_extrapolation_waits_for_three_iterates_and_a_slow_rate() -> None:
     assert ex.after_step(0.2, theta[2], 0.1) is None  # fast rate: plain EM is fine
     jumped = ex.after_step(0.1, np.array([0.2]), 0.9)
     assert jumped is not None and ex.theta == []
+
+
+def test_numerical_fit_module_holds_no_mode_orchestration() -> None:
+    # The choice of non-detection mode and the threshold rounds are orchestration; the censored
+    # fit module keeps the numerics only (issue 12 item 5).
+    import fusion.model.censored_fit as censored_fit
+    import fusion.model.nondetection_modes as nondetection_modes
+
+    assert not hasattr(censored_fit, "refit_with_nondetections")
+    assert not hasattr(censored_fit, "NondetectionMode")
+    assert nondetection_modes.refit_with_nondetections.__module__ == nondetection_modes.__name__
