@@ -150,8 +150,10 @@ from fusion.model.fit_steps import (
     ConvergenceTracker,
     Extrapolation,
     anchor_level,
+    check_iteration_parameters,
     effective_dof,
     moderated_variance,
+    parameter_error,
     raw_variance,
     refresh_due,
     refresh_prior,
@@ -968,30 +970,25 @@ def _check(
     tol_log_sigma: float,
     eb_every: int,
 ) -> None:
-    def bad(name: str, rule: str, value: object) -> ConfigError:
-        return ConfigError(
-            f"The {name!r} parameter of fit_censored_stations must be {rule}. "
-            f"Got {value!r} instead."
-        )
-
+    where = "fit_censored_stations"
     if not (soft_threshold_sd >= 0 and np.isfinite(soft_threshold_sd)):
-        raise bad("soft_threshold_sd", "a float in the range [0, inf)", soft_threshold_sd)
+        raise parameter_error(
+            where, "soft_threshold_sd", "a float in the range [0, inf)", soft_threshold_sd
+        )
     if not (0 <= min_detection_probability < 1):
-        raise bad(
-            "min_detection_probability", "a float in the range [0, 1)", min_detection_probability
+        raise parameter_error(
+            where,
+            "min_detection_probability",
+            "a float in the range [0, 1)",
+            min_detection_probability,
         )
     if outliers not in ("mixture", "student_t", "none"):
-        raise bad("outliers", "one of 'mixture', 'student_t', 'none'", outliers)
-    if not (nu > 0 and np.isfinite(nu)):
-        raise bad("nu", "a float in the range (0, inf)", nu)
-    if not (isinstance(max_iter, int | np.integer) and max_iter >= 1):
-        raise bad("max_iter", "an int in the range [1, inf)", max_iter)
-    if not tol_bias > 0:
-        raise bad("tol_bias", "a float in the range (0, inf)", tol_bias)
-    if not tol_log_sigma > 0:
-        raise bad("tol_log_sigma", "a float in the range (0, inf)", tol_log_sigma)
+        raise parameter_error(where, "outliers", "one of 'mixture', 'student_t', 'none'", outliers)
+    check_iteration_parameters(
+        where, nu=nu, max_iter=max_iter, tol_bias=tol_bias, tol_log_sigma=tol_log_sigma
+    )
     if not (isinstance(eb_every, int | np.integer) and eb_every >= 0):
-        raise bad("eb_every", "an int in the range [0, inf)", eb_every)
+        raise parameter_error(where, "eb_every", "an int in the range [0, inf)", eb_every)
 
 
 def fit_censored_stations(
@@ -1075,16 +1072,28 @@ def fit_censored_stations(
     is the REML-EM's Gaussian one [derived: the event step is then the GLS and the station
     step the unprofiled EM of DESIGN §5.1]; ``tests/fusion/model/test_censored_fit.py`` checks it.
     """
-    c, opt = _prepare(
-        obs,
-        start,
-        anchor,
-        gamma,
-        unit_station,
-        soft_threshold_sd=soft_threshold_sd,
-        min_detection_probability=min_detection_probability,
+    _check(
+        soft_threshold_sd,
+        min_detection_probability,
+        outliers,
+        nu,
+        max_iter,
+        tol_bias,
+        tol_log_sigma,
+        eb_every,
+    )
+    c, an, g_all = _cells_and_anchoring(obs, start, anchor, gamma, unit_station, outliers)
+    opt = _Options(
+        start=start,
+        an=an,
+        gamma=g_all,
+        active=start.connectivity.component >= 0,
+        mu0=float(an.cons.prior_mean),
+        soft=float(soft_threshold_sd),
+        p_min=float(min_detection_probability),
         outliers=outliers,
-        nu=nu,
+        nu=float(nu),
+        kappa=t_weight_consistency(float(nu)) if outliers == "student_t" else 1.0,
         max_iter=max_iter,
         tol_bias=tol_bias,
         tol_log_sigma=tol_log_sigma,
@@ -1105,35 +1114,15 @@ def fit_censored_stations(
     return _result(obs, st, opt, dense_cov_max)
 
 
-def _prepare(
+def _cells_and_anchoring(
     obs: ObservationSet,
     start: RemlEmFit,
     anchor: Anchor,
     gamma: NDArray[np.float64] | None,
     unit_station: NDArray[Any] | None,
-    *,
-    soft_threshold_sd: float,
-    min_detection_probability: float,
     outliers: OutlierModel,
-    nu: float,
-    max_iter: int,
-    tol_bias: float,
-    tol_log_sigma: float,
-    eb_every: int,
-    newton_max_iter: int,
-    accelerate: bool,
-) -> tuple[_Cells, _Options]:
-    """Check the inputs, build the cells and the anchoring of :func:`fit_censored_stations`."""
-    _check(
-        soft_threshold_sd,
-        min_detection_probability,
-        outliers,
-        nu,
-        max_iter,
-        tol_bias,
-        tol_log_sigma,
-        eb_every,
-    )
+) -> tuple[_Cells, _Anchoring, NDArray[np.float64]]:
+    """Check ``start`` and ``gamma`` against ``obs``; build the cells and the anchoring."""
     K, N = obs.n_stations, obs.n_events
     if start.bias.shape != (K,) or start.event_magnitude.shape != (N,):
         raise ConfigError(
@@ -1156,26 +1145,7 @@ def _prepare(
             f"no {obs.magnitude_type} event holds a detection of a fitted station together "
             "with another reading or non-detection; the censored fit has nothing to use"
         )
-    an = _anchoring(obs, start, anchor, u_station)
-    opt = _Options(
-        start=start,
-        an=an,
-        gamma=g_all,
-        active=active,
-        mu0=float(an.cons.prior_mean),
-        soft=float(soft_threshold_sd),
-        p_min=float(min_detection_probability),
-        outliers=outliers,
-        nu=float(nu),
-        kappa=t_weight_consistency(float(nu)) if outliers == "student_t" else 1.0,
-        max_iter=max_iter,
-        tol_bias=tol_bias,
-        tol_log_sigma=tol_log_sigma,
-        eb_every=eb_every,
-        newton_max_iter=newton_max_iter,
-        accelerate=accelerate,
-    )
-    return c, opt
+    return c, _anchoring(obs, start, anchor, u_station), g_all
 
 
 @dataclass(slots=True, eq=False)

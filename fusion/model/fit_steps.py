@@ -41,13 +41,16 @@ from scipy import integrate, stats
 
 from fusion.model.anchors import AnchorKind
 from fusion.model.eb_priors import EBPrior, refreshed_prior
+from stations.errors import ConfigError
 
 __all__ = [
     "ConvergenceTracker",
     "Extrapolation",
     "anchor_level",
+    "check_iteration_parameters",
     "effective_dof",
     "moderated_variance",
+    "parameter_error",
     "raw_variance",
     "refresh_due",
     "refresh_prior",
@@ -55,6 +58,33 @@ __all__ = [
     "student_t_weight",
     "t_weight_consistency",
 ]
+
+
+# ------------------------------------------------------------------------------------------
+# Parameter checks
+# ------------------------------------------------------------------------------------------
+
+
+def parameter_error(where: str, name: str, rule: str, value: object) -> ConfigError:
+    """The error for a parameter of ``where`` outside its range (one wording for all fits)."""
+    return ConfigError(f"The {name!r} parameter of {where} must be {rule}. Got {value!r} instead.")
+
+
+def check_iteration_parameters(
+    where: str, *, nu: float, max_iter: int, tol_bias: float, tol_log_sigma: float
+) -> None:
+    """Check the parameters both station fitters share (t degrees of freedom, iteration limit
+    and tolerances); raise :class:`~stations.errors.ConfigError` naming ``where``."""
+    if not (nu > 0 and np.isfinite(nu)):
+        raise parameter_error(where, "nu", "a float in the range (0, inf)", nu)
+    if not (isinstance(max_iter, int | np.integer) and max_iter >= 1):
+        raise parameter_error(where, "max_iter", "an int in the range [1, inf)", max_iter)
+    if not tol_bias > 0:
+        raise parameter_error(where, "tol_bias", "a float in the range (0, inf)", tol_bias)
+    if not tol_log_sigma > 0:
+        raise parameter_error(
+            where, "tol_log_sigma", "a float in the range (0, inf)", tol_log_sigma
+        )
 
 
 # ------------------------------------------------------------------------------------------

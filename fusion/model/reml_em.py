@@ -116,8 +116,10 @@ from fusion.model.fit_steps import (
     ConvergenceTracker,
     Extrapolation,
     anchor_level,
+    check_iteration_parameters,
     effective_dof,
     moderated_variance,
+    parameter_error,
     raw_variance,
     refresh_due,
     refresh_prior,
@@ -894,21 +896,11 @@ def _ridge(prior: EBPrior) -> float:
 def _check_params(
     nu: float, max_iter: int, tol_bias: float, tol_log_sigma: float, solver: str
 ) -> None:
-    def bad(name: str, rule: str, value: object) -> ConfigError:
-        return ConfigError(
-            f"The {name!r} parameter of fit_reml_em must be {rule}. Got {value!r} instead."
-        )
-
-    if not (nu > 0 and np.isfinite(nu)):
-        raise bad("nu", "a float in the range (0, inf)", nu)
-    if not (isinstance(max_iter, int | np.integer) and max_iter >= 1):
-        raise bad("max_iter", "an int in the range [1, inf)", max_iter)
-    if not tol_bias > 0:
-        raise bad("tol_bias", "a float in the range (0, inf)", tol_bias)
-    if not tol_log_sigma > 0:
-        raise bad("tol_log_sigma", "a float in the range (0, inf)", tol_log_sigma)
+    check_iteration_parameters(
+        "fit_reml_em", nu=nu, max_iter=max_iter, tol_bias=tol_bias, tol_log_sigma=tol_log_sigma
+    )
     if solver not in ("auto", "direct", "pcg"):
-        raise bad("solver", "one of 'auto', 'direct', 'pcg'", solver)
+        raise parameter_error("fit_reml_em", "solver", "one of 'auto', 'direct', 'pcg'", solver)
 
 
 def fit_reml_em(
