@@ -149,6 +149,7 @@ from fusion.model.eb_priors import EBPrior, prior_stable
 from fusion.model.fit_steps import (
     ConvergenceTracker,
     Extrapolation,
+    StationFitResult,
     anchor_level,
     check_iteration_parameters,
     effective_dof,
@@ -227,7 +228,7 @@ def censoring_rows(obs: ObservationSet) -> tuple[int, int]:
 
 
 @dataclass(frozen=True, slots=True, eq=False)
-class CensoredStationFit:
+class CensoredStationFit(StationFitResult):
     """Result of :func:`fit_censored_stations` (magnitude units and their squares).
 
     Per-unit arrays have shape (K,) and follow ``station_ids``; per-event arrays shape (N,);
@@ -307,16 +308,6 @@ class CensoredStationFit:
     n_iter: int
     converged: bool
     soft_threshold_sd: float
-
-    @property
-    def sigma(self) -> NDArray[np.float64]:
-        """σ̃_i, magnitude units."""
-        return np.sqrt(self.sigma2)
-
-    @property
-    def bias_se(self) -> NDArray[np.float64]:
-        """sqrt(Var b̂_i), magnitude units."""
-        return np.sqrt(self.bias_var)
 
     def as_reml_fit(self, base: RemlEmFit) -> RemlEmFit:
         """``base`` (the warm start) carrying this fit's parameters, events and detections.

@@ -61,6 +61,34 @@ __all__ = [
 
 
 # ------------------------------------------------------------------------------------------
+# Results
+# ------------------------------------------------------------------------------------------
+
+
+class StationFitResult:
+    """What every station fit result offers besides its fields: σ̃ and SE(b̂) per unit.
+
+    A mixin of :class:`fusion.model.reml_em.RemlEmFit` and
+    :class:`fusion.model.censored_fit.CensoredStationFit` (frozen dataclasses with the fields
+    ``sigma2`` and ``bias_var``, magnitude units²).
+    """
+
+    __slots__ = ()
+    sigma2: NDArray[np.float64]
+    bias_var: NDArray[np.float64]
+
+    @property
+    def sigma(self) -> NDArray[np.float64]:
+        """σ̃_i, magnitude units."""
+        return np.sqrt(self.sigma2)
+
+    @property
+    def bias_se(self) -> NDArray[np.float64]:
+        """sqrt(Var b̂_i), magnitude units."""
+        return np.sqrt(self.bias_var)
+
+
+# ------------------------------------------------------------------------------------------
 # Parameter checks
 # ------------------------------------------------------------------------------------------
 

@@ -115,6 +115,7 @@ from fusion.model.eb_priors import (
 from fusion.model.fit_steps import (
     ConvergenceTracker,
     Extrapolation,
+    StationFitResult,
     anchor_level,
     check_iteration_parameters,
     effective_dof,
@@ -153,7 +154,7 @@ _PCG_REFRESH_ITER = 20
 
 
 @dataclass(frozen=True, slots=True, eq=False)
-class RemlEmFit:
+class RemlEmFit(StationFitResult):
     """Result of :func:`fit_reml_em`.
 
     Per-station arrays have shape (K,) and follow ``station_ids`` (station units); per-event
@@ -236,16 +237,6 @@ class RemlEmFit:
     converged: bool
     solver: str
     gamma: NDArray[np.float64]
-
-    @property
-    def sigma(self) -> NDArray[np.float64]:
-        """σ̃_i, magnitude units."""
-        return np.sqrt(self.sigma2)
-
-    @property
-    def bias_se(self) -> NDArray[np.float64]:
-        """sqrt(Var b̂_i), magnitude units."""
-        return np.sqrt(self.bias_var)
 
 
 # ------------------------------------------------------------------------------------------
