@@ -42,10 +42,12 @@ __all__ = [
     "TREND_T_ALARM",
     "GroupedMean",
     "GroupedSlope",
+    "UnitUsage",
     "chance_flag_rate",
     "grouped_weighted_mean",
     "grouped_wls_slope",
     "sigma_interval",
+    "unit_usage",
 ]
 
 #: |t| above this flags a trend (rule stated in the module docstring and in the report).
@@ -276,3 +278,80 @@ def sigma_interval(
     with np.errstate(divide="ignore"):
         high = np.where(ok, sigma * np.sqrt(dd / lo_q), np.nan)
     return low, high
+
+
+@dataclass(frozen=True, slots=True)
+class UnitUsage:
+    """How much each station unit contributed to the network magnitudes (:func:`unit_usage`).
+
+    Attributes
+    ----------
+    n_readings : ndarray of int, shape (K,)
+        Detections of the unit.
+    weight_share : ndarray, shape (K,)
+        Σ weight of the unit's rows / number of events with a magnitude (shares sum to 1 over
+        units plus stations the model does not know); NaN without events.
+    mean_weight : ndarray, shape (K,)
+        Σ weight / n_readings, the unit's typical weight when it reports; NaN without readings.
+    outlier_rate : ndarray, shape (K,)
+        Readings with robust weight below ``outlier_weight`` / readings with a robust weight.
+    """
+
+    n_readings: NDArray[np.int64]
+    weight_share: NDArray[np.float64]
+    mean_weight: NDArray[np.float64]
+    outlier_rate: NDArray[np.float64]
+
+
+def unit_usage(
+    unit: NDArray[np.int64],
+    detected: NDArray[np.bool_],
+    weight: NDArray[np.float64],
+    robust_weight: NDArray[np.float64],
+    n_units: int,
+    n_events: int,
+    *,
+    outlier_weight: float = 0.3,
+) -> UnitUsage:
+    """Readings, weight share, mean weight and outlier rate of every unit at once.
+
+    Parameters
+    ----------
+    unit : ndarray of int, shape (n,)
+        Unit code of each contribution row, −1 for stations the model does not know.
+    detected : ndarray of bool, shape (n,)
+    weight : ndarray, shape (n,)
+        Normalised GLS weight of the row in its event (NaN: none).
+    robust_weight : ndarray, shape (n,)
+        Robust weight ω of the row (NaN: none).
+    n_units : int
+        K.
+    n_events : int
+        Events with a network magnitude.
+    outlier_weight : float, default=0.3
+        A reading with ω below this is an outlier (docs/estimator.md).
+
+    Returns
+    -------
+    UnitUsage
+    """
+    K = n_units
+    known = unit >= 0
+    det = known & detected
+    n_read = np.bincount(unit[det], minlength=K).astype(np.int64)
+    w_ok = known & np.isfinite(weight)
+    w_sum = np.bincount(unit[w_ok], weights=weight[w_ok], minlength=K)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        weight_share = w_sum / n_events if n_events else np.full(K, np.nan)
+        mean_weight = np.where(n_read > 0, w_sum / np.maximum(n_read, 1), np.nan)
+    has_rw = det & np.isfinite(robust_weight)
+    n_rw = np.bincount(unit[has_rw], minlength=K)
+    n_out = np.bincount(unit[has_rw & (robust_weight < outlier_weight)], minlength=K)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        outlier_rate = np.where(n_rw > 0, n_out / np.maximum(n_rw, 1), np.nan)
+    return UnitUsage(
+        n_readings=n_read,
+        weight_share=weight_share,
+        mean_weight=mean_weight,
+        outlier_rate=outlier_rate,
+    )

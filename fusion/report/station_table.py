@@ -67,6 +67,7 @@ from fusion.model.diagnostics import (
     grouped_weighted_mean,
     grouped_wls_slope,
     sigma_interval,
+    unit_usage,
 )
 from fusion.report.inputs import ReportInputs, as_bool, codes_in
 from fusion.report.joined import JoinedRows, join_rows
@@ -320,20 +321,12 @@ def station_reliability_table(
     rank = pd.Series(sigma).rank(method="min").to_numpy()
 
     # -- window figures per unit ---------------------------------------------------------
-    known = jr.unit >= 0
-    det = known & jr.detected
-    n_read = np.bincount(jr.unit[det], minlength=K).astype(np.int64)
     n_est = int(np.count_nonzero(np.isfinite(pd.to_numeric(inputs.events["magnitude"]))))
-    w_ok = known & np.isfinite(jr.weight)
-    w_sum = np.bincount(jr.unit[w_ok], weights=jr.weight[w_ok], minlength=K)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        weight_share = w_sum / n_est if n_est else np.full(K, np.nan)
-        mean_weight = np.where(n_read > 0, w_sum / np.maximum(n_read, 1), np.nan)
-    has_rw = det & np.isfinite(jr.robust_weight)
-    n_rw = np.bincount(jr.unit[has_rw], minlength=K)
-    n_out = np.bincount(jr.unit[has_rw & (jr.robust_weight < outlier_weight)], minlength=K)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        outlier_rate = np.where(n_rw > 0, n_out / np.maximum(n_rw, 1), np.nan)
+    usage = unit_usage(
+        jr.unit, jr.detected, jr.weight, jr.robust_weight, K, n_est, outlier_weight=outlier_weight
+    )
+    n_read, weight_share = usage.n_readings, usage.weight_share
+    mean_weight, outlier_rate = usage.mean_weight, usage.outlier_rate
 
     a = jr.analysable
     rw = np.where(np.isfinite(jr.robust_weight), jr.robust_weight, 1.0)
