@@ -5,6 +5,10 @@
 (:mod:`fusion.workflows.dry_run`) prints it before and after a model change, the station report
 (:mod:`fusion.report.writer`) writes it as a paragraph. The censored estimate itself is
 described in docs/censoring.md.
+
+:func:`plain_mean_difference` and :func:`difference_summary` describe how far the network
+magnitudes lie from the plain mean of the raw station magnitudes (the station report's
+network summary; any caller comparing two estimates per event).
 """
 
 from __future__ import annotations
@@ -13,8 +17,9 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from numpy.typing import NDArray
 
-__all__ = ["censoring_summary"]
+__all__ = ["censoring_summary", "difference_summary", "plain_mean_difference"]
 
 
 def censoring_summary(events: pd.DataFrame) -> dict[str, Any]:
@@ -63,4 +68,45 @@ def censoring_summary(events: pd.DataFrame) -> dict[str, Any]:
         "shift": shift,
         "n_uncorrected": flagged("censoring-uncorrected"),
         "n_likely_biased_high": flagged("likely-biased-high"),
+    }
+
+
+def plain_mean_difference(events: pd.DataFrame) -> NDArray[np.float64]:
+    """Network magnitude minus the plain mean of the raw station magnitudes, per event.
+
+    The ``minus_plain_mean`` column when present, else ``magnitude − plain_mean``
+    (magnitude units; NaN where either is missing).
+    """
+    if "minus_plain_mean" in events.columns:
+        return np.asarray(pd.to_numeric(events["minus_plain_mean"]).to_numpy(dtype=float))
+    return np.asarray(
+        pd.to_numeric(events["magnitude"]).to_numpy(dtype=float)
+        - pd.to_numeric(events["plain_mean"]).to_numpy(dtype=float)
+    )
+
+
+def difference_summary(d: NDArray[np.float64], *, moved: float = 0.1) -> dict[str, Any]:
+    """Median, 5 % and 95 % quantiles and the count |d| >= ``moved`` of the finite values.
+
+    Parameters
+    ----------
+    d : ndarray
+        Per-event differences, magnitude units (NaN ignored).
+    moved : float, default=0.1
+        Threshold of the count ``n_ge_0_1``, magnitude units.
+
+    Returns
+    -------
+    dict
+        ``n`` (finite values) and, when n > 0, ``median``, ``q05``, ``q95``, ``n_ge_0_1``.
+    """
+    fin = d[np.isfinite(d)]
+    if not fin.shape[0]:
+        return {"n": 0}
+    return {
+        "n": int(fin.shape[0]),
+        "median": float(np.median(fin)),
+        "q05": float(np.quantile(fin, 0.05)),
+        "q95": float(np.quantile(fin, 0.95)),
+        "n_ge_0_1": int(np.count_nonzero(np.abs(fin) >= moved)),
     }

@@ -33,7 +33,11 @@ from numpy.typing import NDArray
 
 from fusion.advisory import ADVISORY
 from fusion.model.diagnostics import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
-from fusion.network.summaries import censoring_summary
+from fusion.network.summaries import (
+    censoring_summary,
+    difference_summary,
+    plain_mean_difference,
+)
 from fusion.report.event_figure import event_figure_png, event_picture_from_tables
 from fusion.report.figures import (
     StationPanelData,
@@ -456,11 +460,7 @@ def _summary_part(cx: _Context, *, n_affected_events: int, n_event_pictures: int
     pg, ev, st, level = cx.pg, cx.ev, cx.st, cx.level
     n_events = len(ev)
     att = attention_mask(st)
-    d = pd.to_numeric(ev["magnitude"]).to_numpy(dtype=float) - pd.to_numeric(
-        ev["plain_mean"]
-    ).to_numpy(dtype=float)
-    if "minus_plain_mean" in ev.columns:
-        d = pd.to_numeric(ev["minus_plain_mean"]).to_numpy(dtype=float)
+    d = plain_mean_difference(ev)
     fin = np.isfinite(d)
     pg.add('<h2 id="summary">Network summary</h2>')
     summary = (
@@ -468,12 +468,12 @@ def _summary_part(cx: _Context, *, n_affected_events: int, n_event_pictures: int
         f"{n_events} events in the report window, {int(np.count_nonzero(att))} units need "
         f"attention. Median error SD {np.nanmedian(st['sigma']):.3f}. "
     )
-    if np.any(fin):
+    ds = difference_summary(d)
+    if ds["n"]:
         summary += (
-            f"Network magnitude minus plain mean: median {np.median(d[fin]):+.3f}, "
-            f"90 % of events within [{np.quantile(d[fin], 0.05):+.3f}, "
-            f"{np.quantile(d[fin], 0.95):+.3f}], "
-            f"{int(np.count_nonzero(np.abs(d[fin]) >= 0.1))} events moved by 0.1 or more."
+            f"Network magnitude minus plain mean: median {ds['median']:+.3f}, "
+            f"90 % of events within [{ds['q05']:+.3f}, {ds['q95']:+.3f}], "
+            f"{ds['n_ge_0_1']} events moved by 0.1 or more."
         )
     pg.add(f"<p>{esc(summary)}</p>")
     cens_text = _censoring_text(ev)
