@@ -21,7 +21,7 @@ t_ij) is run for several seeds. Side by side, on the same events (every event wi
 - ``thr +0.1`` / ``thr −0.1`` / ``thr N(0,.15²)``: every stored threshold wrong by that much,
   in the fit and in the network estimate (sensitivity, docs/censoring.md §10);
 - ``estimated thr``: thresholds hidden, estimated from probit detection curves
-  (:func:`fusion.model.censored_fit.refit_with_nondetections`, 3 rounds);
+  (:func:`fusion.model.nondetection_modes.refit_with_nondetections`, 3 rounds);
 - ``safe cells``: no non-detection stored at all; the fallback of docs/censoring.md §8 (fit on safe
   cells, detections-only network estimate).
 
@@ -52,7 +52,8 @@ from typing import Any
 import numpy as np
 
 from fusion.model.anchors import Anchor
-from fusion.model.censored_fit import fit_censored_stations, refit_with_nondetections
+from fusion.model.censored_fit import fit_censored_stations
+from fusion.model.nondetection_modes import refit_with_nondetections
 from fusion.model.parameters import StationParameters
 from fusion.model.reml_em import RemlEmFit, fit_reml_em
 from fusion.model.simulation import (

@@ -25,7 +25,7 @@ from stations.errors import InsufficientDataError
 if TYPE_CHECKING:
     import pandas as pd
 
-__all__ = ["ObservationSet"]
+__all__ = ["ObservationSet", "index_of"]
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -249,3 +249,25 @@ class ObservationSet:
     def station_counts(self) -> NDArray[np.int64]:
         """n_i: rows per station, shape (K,)."""
         return np.bincount(self.station, minlength=self.n_stations).astype(np.int64)
+
+
+def index_of(table: NDArray[Any], keys: NDArray[Any]) -> NDArray[np.int64]:
+    """Index of each key in ``table`` (unique ids), -1 when absent; vectorized (one sort).
+
+    Parameters
+    ----------
+    table : ndarray of str, shape (T,)
+        Unique ids (event, station or unit ids).
+    keys : ndarray of str, shape (n,)
+        Ids to look up.
+
+    Returns
+    -------
+    ndarray of int64, shape (n,)
+    """
+    if table.shape[0] == 0:
+        return np.full(keys.shape[0], -1, dtype=np.int64)
+    sorter = np.argsort(table)
+    pos = np.clip(np.searchsorted(table, keys, sorter=sorter), 0, table.shape[0] - 1)
+    idx = sorter[pos]
+    return np.where(table[idx] == keys, idx, -1).astype(np.int64)

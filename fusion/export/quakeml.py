@@ -88,10 +88,11 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Final, Literal
+from typing import TYPE_CHECKING, Any, Final, Literal
 
 import numpy as np
 import pandas as pd
+from numpy.typing import NDArray
 
 from fusion import __version__
 from fusion.advisory import ADVISORY
@@ -368,19 +369,7 @@ def build_catalog(
         Unknown ``uncertainty``.
     """
     from obspy import UTCDateTime
-    from obspy.core.event import (
-        Catalog,
-        Comment,
-        CreationInfo,
-        Event,
-        Magnitude,
-        Origin,
-        QuantityError,
-        ResourceIdentifier,
-        StationMagnitude,
-        StationMagnitudeContribution,
-        WaveformStreamID,
-    )
+    from obspy.core.event import Catalog, Comment, CreationInfo, ResourceIdentifier
 
     if uncertainty not in ("se", "interval"):
         raise ConfigError(
@@ -390,63 +379,8 @@ def build_catalog(
     _require(events, _EVENT_COLUMNS, "events")
     _require(contributions, _ROW_COLUMNS, "contributions")
     created = (now or datetime.now(UTC)).astimezone(UTC)
-
-    # -- events: columns as arrays once -------------------------------------------------------
-    ev_ids = events["event_id"].astype(str).to_numpy()
-    mag = events["magnitude"].to_numpy(dtype=float, na_value=np.nan)
-    keep = np.isfinite(mag)
-    origin_ns = _epoch_ns(events["origin_time"])
-    fused_ns = _epoch_ns(events["fused_at"])
-    se = events["se"].to_numpy(dtype=float, na_value=np.nan)
-    half = 0.5 * (
-        events["ci_high"].to_numpy(dtype=float, na_value=np.nan)
-        - events["ci_low"].to_numpy(dtype=float, na_value=np.nan)
-    )
-    level = events["confidence_level"].to_numpy(dtype=float, na_value=np.nan)
-    unc = se if uncertainty == "se" else half
-    unc_level = np.full(mag.shape, SE_CONFIDENCE_PERCENT) if uncertainty == "se" else 100 * level
-    n_st = events["n_stations"].to_numpy(dtype=np.int64)
-    text_cols = {
-        c: events[c].astype(object).where(events[c].notna(), "").astype(str).to_numpy()
-        for c in ("magnitude_type", "method", "flags", "model_version", "evaluation_status")
-    }
-    run_ids = (
-        events["run_id"].astype(object).where(events["run_id"].notna(), "").astype(str).to_numpy()
-    )
-
-    loc = event_locations(readings) if readings is not None else None
-    lat = lon = dep = np.full(ev_ids.shape, np.nan)
-    if loc is not None:
-        aligned = loc.reindex(ev_ids)
-        lat = aligned["event_latitude"].to_numpy(dtype=float)
-        lon = aligned["event_longitude"].to_numpy(dtype=float)
-        dep = aligned["event_depth"].to_numpy(dtype=float)
-    has_origin = np.isfinite(lat) & np.isfinite(lon)
-    channels = _channels(readings)
-
-    # -- contributions: group rows by event with one stable sort ------------------------------
-    c_ev = pd.Index(ev_ids).get_indexer(pd.Index(contributions["event_id"].astype(str)))
-    c_mag = contributions["corrected_magnitude"].to_numpy(dtype=float, na_value=np.nan)
-    c_det = contributions["detected"].to_numpy(dtype=bool)
-    usable = (c_ev >= 0) & c_det & np.isfinite(c_mag)
-    c_rows = np.flatnonzero(usable)
-    c_rows = c_rows[np.argsort(c_ev[c_rows], kind="stable")]
-    bounds = np.searchsorted(c_ev[c_rows], np.arange(ev_ids.shape[0] + 1))
-    c_sid = contributions["station_id"].astype(str).to_numpy()
-    c_unit = contributions["unit_id"].astype(object).where(contributions["unit_id"].notna(), "")
-    c_unit_s = c_unit.astype(str).to_numpy()
-    c_flags = contributions["flags"].astype(object).where(contributions["flags"].notna(), "")
-    c_flags_s = c_flags.astype(str).to_numpy()
-    c_raw = contributions["magnitude"].to_numpy(dtype=float, na_value=np.nan)
-    c_corr = contributions["correction"].to_numpy(dtype=float, na_value=np.nan)
-    c_w = contributions["weight"].to_numpy(dtype=float, na_value=np.nan)
-    c_res = contributions["residual"].to_numpy(dtype=float, na_value=np.nan)
-    c_chan: np.ndarray | None = None
-    if "channel" in contributions.columns:
-        col = contributions["channel"].astype(object)
-        c_chan = col.where(col.notna(), "").astype(str).to_numpy()
-
-    # -- objects (ObsPy's model is one Python object per element) ---------------------------
+    ec = _event_columns(events, readings, uncertainty)
+    rc = _row_columns(contributions, ec.ev_ids, readings)
     catalog = Catalog(
         resource_id=ResourceIdentifier(f"{_PREFIX}/catalog/{created:%Y%m%dT%H%M%S%fZ}"),
         creation_info=CreationInfo(
@@ -458,113 +392,287 @@ def build_catalog(
     )
     n_sm = 0
     versions: set[str] = set()
-    for j in np.flatnonzero(keep):
-        key = _escape(ev_ids[j])
-        mtype = text_cols["magnitude_type"][j]
-        run = _escape(str(run_ids[j])) or "unstored"
-        event = Event(resource_id=ResourceIdentifier(event_resource_id(ev_ids[j])))
-        origin_id = None
-        if has_origin[j]:
-            origin = Origin(
-                resource_id=ResourceIdentifier(f"{_PREFIX}/origin/{key}"),
-                time=UTCDateTime(ns=int(origin_ns[j])),
-                latitude=float(lat[j]),
-                longitude=float(lon[j]),
-                depth=float(dep[j]) * 1000.0 if np.isfinite(dep[j]) else None,
-            )
-            event.origins.append(origin)
-            event.preferred_origin_id = origin.resource_id
-            origin_id = origin.resource_id
-        else:
-            event.comments.append(
-                Comment(
-                    resource_id=ResourceIdentifier(f"{_PREFIX}/comment/{key}/origin-time"),
-                    text=(
-                        f"origin_time={UTCDateTime(ns=int(origin_ns[j]))}; no location known, "
-                        "so no QuakeML origin"
-                    ),
-                )
-            )
-        mag_id = f"{_PREFIX}/magnitude/{_escape(mtype)}/{key}/{run}"
-        errors = QuantityError()
-        if np.isfinite(unc[j]):
-            errors = QuantityError(uncertainty=float(unc[j]), confidence_level=float(unc_level[j]))
-        version = text_cols["model_version"][j]
-        versions.add(version)
-        magnitude = Magnitude(
-            resource_id=ResourceIdentifier(mag_id),
-            mag=float(mag[j]),
-            mag_errors=errors,
-            magnitude_type=mtype,
-            origin_id=origin_id,
-            method_id=ResourceIdentifier(f"{_PREFIX}/method/{_escape(text_cols['method'][j])}"),
-            station_count=int(n_st[j]),
-            evaluation_mode="automatic",
-            evaluation_status=text_cols["evaluation_status"][j] or None,
-            creation_info=CreationInfo(
-                author="magfuse",
-                version=version or None,
-                creation_time=None if fused_ns[j] == _NAT else UTCDateTime(ns=int(fused_ns[j])),
-            ),
-        )
-        magnitude.comments.append(
-            Comment(
-                resource_id=ResourceIdentifier(f"{mag_id}/comment"),
-                text=f"flags={text_cols['flags'][j]}; run_id={run_ids[j]}",
-            )
-        )
-        # stationMagnitude/originID is mandatory: no origin, no station magnitudes
-        mine = c_rows[bounds[j] : bounds[j + 1]] if origin_id is not None else c_rows[:0]
-        for k, i in enumerate(mine):
-            net, sta, locc = _station_parts(c_sid[i], int(i))
-            chan = c_chan[i] if c_chan is not None else ""
-            chan = chan or channels.get((ev_ids[j], c_sid[i]), "")
-            sm_id = f"{_PREFIX}/stationmagnitude/{_escape(mtype)}/{key}/{run}/{k}"
-            fields: Mapping[str, str] = {
-                "station_correction": _num(c_corr[i]),
-                "magnitude_as_read": _num(c_raw[i]),
-                "unit_id": c_unit_s[i],
-                "flags": c_flags_s[i],
-            }
-            sm = StationMagnitude(
-                resource_id=ResourceIdentifier(sm_id),
-                origin_id=origin_id,
-                mag=float(c_mag[i]),
-                station_magnitude_type=mtype,
-                method_id=ResourceIdentifier(f"{_PREFIX}/method/station-corrected"),
-                waveform_id=WaveformStreamID(
-                    network_code=net,
-                    station_code=sta,
-                    location_code=locc,
-                    channel_code=chan or None,
-                ),
-                comments=[
-                    Comment(
-                        resource_id=ResourceIdentifier(f"{sm_id}/comment"),
-                        text="; ".join(f"{a}={b}" for a, b in fields.items()),
-                    )
-                ],
-            )
-            event.station_magnitudes.append(sm)
-            magnitude.station_magnitude_contributions.append(
-                StationMagnitudeContribution(
-                    station_magnitude_id=sm.resource_id,
-                    residual=float(c_res[i]) if np.isfinite(c_res[i]) else None,
-                    weight=float(c_w[i]) if np.isfinite(c_w[i]) else None,
-                )
-            )
-            n_sm += 1
-        event.magnitudes.append(magnitude)
+    for j in np.flatnonzero(ec.keep):
+        event, n_station_magnitudes = _event_object(ec, rc, int(j))
+        versions.add(ec.text["model_version"][j])
+        n_sm += n_station_magnitudes
         catalog.events.append(event)
-    n_written = int(keep.sum())
+    keep = ec.keep
     summary = QuakeMLSummary(
-        events=n_written,
+        events=int(keep.sum()),
         without_magnitude=int((~keep).sum()),
-        without_origin=int((keep & ~has_origin).sum()),
+        without_origin=int((keep & ~ec.has_origin).sum()),
         station_magnitudes=n_sm,
         model_versions=tuple(sorted(v for v in versions if v)),
     )
     return catalog, summary
+
+
+@dataclass(slots=True, eq=False)
+class _EventColumns:
+    """The event table's columns as arrays, once (ObsPy then needs one object per element)."""
+
+    ev_ids: NDArray[Any]
+    mag: NDArray[np.float64]
+    keep: NDArray[np.bool_]  # events with a magnitude
+    origin_ns: NDArray[np.int64]
+    fused_ns: NDArray[np.int64]
+    unc: NDArray[np.float64]
+    unc_level: NDArray[np.float64]
+    n_st: NDArray[np.int64]
+    text: dict[str, NDArray[Any]]
+    run_ids: NDArray[Any]
+    lat: NDArray[np.float64]
+    lon: NDArray[np.float64]
+    dep: NDArray[np.float64]
+    has_origin: NDArray[np.bool_]
+
+
+@dataclass(slots=True, eq=False)
+class _RowColumns:
+    """Usable contribution rows grouped by event (``rows[bounds[j]:bounds[j + 1]]``)."""
+
+    rows: NDArray[np.int64]
+    bounds: NDArray[np.int64]
+    mag: NDArray[np.float64]
+    sid: NDArray[Any]
+    unit: NDArray[Any]
+    flags: NDArray[Any]
+    raw: NDArray[np.float64]
+    corr: NDArray[np.float64]
+    weight: NDArray[np.float64]
+    residual: NDArray[np.float64]
+    chan: NDArray[Any] | None
+    channels: Mapping[tuple[str, str], str]
+
+
+def _event_columns(
+    events: pd.DataFrame, readings: pd.DataFrame | None, uncertainty: str
+) -> _EventColumns:
+    """Event columns as arrays, the uncertainty chosen, and locations from ``readings``."""
+    ev_ids = events["event_id"].astype(str).to_numpy()
+    mag = events["magnitude"].to_numpy(dtype=float, na_value=np.nan)
+    se = events["se"].to_numpy(dtype=float, na_value=np.nan)
+    half = 0.5 * (
+        events["ci_high"].to_numpy(dtype=float, na_value=np.nan)
+        - events["ci_low"].to_numpy(dtype=float, na_value=np.nan)
+    )
+    level = events["confidence_level"].to_numpy(dtype=float, na_value=np.nan)
+    loc = event_locations(readings) if readings is not None else None
+    lat = lon = dep = np.full(ev_ids.shape, np.nan)
+    if loc is not None:
+        aligned = loc.reindex(ev_ids)
+        lat = aligned["event_latitude"].to_numpy(dtype=float)
+        lon = aligned["event_longitude"].to_numpy(dtype=float)
+        dep = aligned["event_depth"].to_numpy(dtype=float)
+    return _EventColumns(
+        ev_ids=ev_ids,
+        mag=mag,
+        keep=np.isfinite(mag),
+        origin_ns=_epoch_ns(events["origin_time"]),
+        fused_ns=_epoch_ns(events["fused_at"]),
+        unc=se if uncertainty == "se" else half,
+        unc_level=(
+            np.full(mag.shape, SE_CONFIDENCE_PERCENT) if uncertainty == "se" else 100 * level
+        ),
+        n_st=events["n_stations"].to_numpy(dtype=np.int64),
+        text={
+            c: events[c].astype(object).where(events[c].notna(), "").astype(str).to_numpy()
+            for c in ("magnitude_type", "method", "flags", "model_version", "evaluation_status")
+        },
+        run_ids=(
+            events["run_id"]
+            .astype(object)
+            .where(events["run_id"].notna(), "")
+            .astype(str)
+            .to_numpy()
+        ),
+        lat=lat,
+        lon=lon,
+        dep=dep,
+        has_origin=np.isfinite(lat) & np.isfinite(lon),
+    )
+
+
+def _row_columns(
+    contributions: pd.DataFrame, ev_ids: NDArray[Any], readings: pd.DataFrame | None
+) -> _RowColumns:
+    """Contribution columns as arrays; usable rows grouped by event with one stable sort."""
+    c_ev = pd.Index(ev_ids).get_indexer(pd.Index(contributions["event_id"].astype(str)))
+    c_mag = contributions["corrected_magnitude"].to_numpy(dtype=float, na_value=np.nan)
+    c_det = contributions["detected"].to_numpy(dtype=bool)
+    usable = (c_ev >= 0) & c_det & np.isfinite(c_mag)
+    c_rows = np.flatnonzero(usable)
+    c_rows = c_rows[np.argsort(c_ev[c_rows], kind="stable")]
+    c_unit = contributions["unit_id"].astype(object).where(contributions["unit_id"].notna(), "")
+    c_flags = contributions["flags"].astype(object).where(contributions["flags"].notna(), "")
+    c_chan: np.ndarray | None = None
+    if "channel" in contributions.columns:
+        col = contributions["channel"].astype(object)
+        c_chan = col.where(col.notna(), "").astype(str).to_numpy()
+    return _RowColumns(
+        rows=c_rows,
+        bounds=np.searchsorted(c_ev[c_rows], np.arange(ev_ids.shape[0] + 1)),
+        mag=c_mag,
+        sid=contributions["station_id"].astype(str).to_numpy(),
+        unit=c_unit.astype(str).to_numpy(),
+        flags=c_flags.astype(str).to_numpy(),
+        raw=contributions["magnitude"].to_numpy(dtype=float, na_value=np.nan),
+        corr=contributions["correction"].to_numpy(dtype=float, na_value=np.nan),
+        weight=contributions["weight"].to_numpy(dtype=float, na_value=np.nan),
+        residual=contributions["residual"].to_numpy(dtype=float, na_value=np.nan),
+        chan=c_chan,
+        channels=_channels(readings),
+    )
+
+
+def _event_object(ec: _EventColumns, rc: _RowColumns, j: int) -> tuple[Any, int]:
+    """One QuakeML event: origin (or a comment with the origin time), the network magnitude
+    and its station magnitudes; returns the event and its number of station magnitudes."""
+    from obspy import UTCDateTime
+    from obspy.core.event import (
+        Comment,
+        CreationInfo,
+        Event,
+        Magnitude,
+        Origin,
+        QuantityError,
+        ResourceIdentifier,
+    )
+
+    ev_ids = ec.ev_ids
+    key = _escape(ev_ids[j])
+    mtype = ec.text["magnitude_type"][j]
+    run = _escape(str(ec.run_ids[j])) or "unstored"
+    event = Event(resource_id=ResourceIdentifier(event_resource_id(ev_ids[j])))
+    origin_id = None
+    if ec.has_origin[j]:
+        origin = Origin(
+            resource_id=ResourceIdentifier(f"{_PREFIX}/origin/{key}"),
+            time=UTCDateTime(ns=int(ec.origin_ns[j])),
+            latitude=float(ec.lat[j]),
+            longitude=float(ec.lon[j]),
+            depth=float(ec.dep[j]) * 1000.0 if np.isfinite(ec.dep[j]) else None,
+        )
+        event.origins.append(origin)
+        event.preferred_origin_id = origin.resource_id
+        origin_id = origin.resource_id
+    else:
+        event.comments.append(
+            Comment(
+                resource_id=ResourceIdentifier(f"{_PREFIX}/comment/{key}/origin-time"),
+                text=(
+                    f"origin_time={UTCDateTime(ns=int(ec.origin_ns[j]))}; no location known, "
+                    "so no QuakeML origin"
+                ),
+            )
+        )
+    mag_id = f"{_PREFIX}/magnitude/{_escape(mtype)}/{key}/{run}"
+    errors = QuantityError()
+    if np.isfinite(ec.unc[j]):
+        errors = QuantityError(
+            uncertainty=float(ec.unc[j]), confidence_level=float(ec.unc_level[j])
+        )
+    version = ec.text["model_version"][j]
+    fused_ns = ec.fused_ns[j]
+    magnitude = Magnitude(
+        resource_id=ResourceIdentifier(mag_id),
+        mag=float(ec.mag[j]),
+        mag_errors=errors,
+        magnitude_type=mtype,
+        origin_id=origin_id,
+        method_id=ResourceIdentifier(f"{_PREFIX}/method/{_escape(ec.text['method'][j])}"),
+        station_count=int(ec.n_st[j]),
+        evaluation_mode="automatic",
+        evaluation_status=ec.text["evaluation_status"][j] or None,
+        creation_info=CreationInfo(
+            author="magfuse",
+            version=version or None,
+            creation_time=None if fused_ns == _NAT else UTCDateTime(ns=int(fused_ns)),
+        ),
+    )
+    magnitude.comments.append(
+        Comment(
+            resource_id=ResourceIdentifier(f"{mag_id}/comment"),
+            text=f"flags={ec.text['flags'][j]}; run_id={ec.run_ids[j]}",
+        )
+    )
+    # stationMagnitude/originID is mandatory: no origin, no station magnitudes
+    n_sm = 0
+    if origin_id is not None:
+        mine = rc.rows[rc.bounds[j] : rc.bounds[j + 1]]
+        n_sm = _add_station_magnitudes(
+            event,
+            magnitude,
+            rc,
+            mine,
+            str(ev_ids[j]),
+            f"{_escape(mtype)}/{key}/{run}",
+            mtype,
+            origin_id,
+        )
+    event.magnitudes.append(magnitude)
+    return event, n_sm
+
+
+def _add_station_magnitudes(
+    event: Any,
+    magnitude: Any,
+    rc: _RowColumns,
+    mine: NDArray[np.int64],
+    event_id: str,
+    path: str,
+    mtype: str,
+    origin_id: Any,
+) -> int:
+    """Station magnitudes of one event and their contributions to ``magnitude``."""
+    from obspy.core.event import (
+        Comment,
+        ResourceIdentifier,
+        StationMagnitude,
+        StationMagnitudeContribution,
+        WaveformStreamID,
+    )
+
+    for k, i in enumerate(mine):
+        net, sta, locc = _station_parts(rc.sid[i], int(i))
+        chan = rc.chan[i] if rc.chan is not None else ""
+        chan = chan or rc.channels.get((event_id, rc.sid[i]), "")
+        sm_id = f"{_PREFIX}/stationmagnitude/{path}/{k}"
+        fields: Mapping[str, str] = {
+            "station_correction": _num(rc.corr[i]),
+            "magnitude_as_read": _num(rc.raw[i]),
+            "unit_id": rc.unit[i],
+            "flags": rc.flags[i],
+        }
+        sm = StationMagnitude(
+            resource_id=ResourceIdentifier(sm_id),
+            origin_id=origin_id,
+            mag=float(rc.mag[i]),
+            station_magnitude_type=mtype,
+            method_id=ResourceIdentifier(f"{_PREFIX}/method/station-corrected"),
+            waveform_id=WaveformStreamID(
+                network_code=net,
+                station_code=sta,
+                location_code=locc,
+                channel_code=chan or None,
+            ),
+            comments=[
+                Comment(
+                    resource_id=ResourceIdentifier(f"{sm_id}/comment"),
+                    text="; ".join(f"{a}={b}" for a, b in fields.items()),
+                )
+            ],
+        )
+        event.station_magnitudes.append(sm)
+        magnitude.station_magnitude_contributions.append(
+            StationMagnitudeContribution(
+                station_magnitude_id=sm.resource_id,
+                residual=float(rc.residual[i]) if np.isfinite(rc.residual[i]) else None,
+                weight=float(rc.weight[i]) if np.isfinite(rc.weight[i]) else None,
+            )
+        )
+    return int(mine.shape[0])
 
 
 def write_quakeml(

@@ -53,6 +53,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from fusion.model.parameters import StationParameters
+from fusion.observations import index_of
 from stations.errors import ConfigError, MalformedFileError
 
 __all__ = [
@@ -421,7 +422,7 @@ def reference_event_priors(
     if anchor.kind is not AnchorKind.REFERENCE_EVENTS or anchor.reference_events is None:
         return mean, prec
     ref = anchor.reference_events
-    pos = _lookup(ref.event_id.astype(str), np.asarray(event_ids).astype(str))
+    pos = index_of(ref.event_id.astype(str), np.asarray(event_ids).astype(str))
     hit = pos >= 0
     mean[hit] = ref.magnitude[pos[hit]]
     unc = ref.uncertainty[pos[hit]]
@@ -500,7 +501,7 @@ def level_constraints(
         prev = anchor.previous
         if prev is not None:
             pos = (
-                _lookup(prev.unit_ids.astype(str), np.asarray(unit_ids).astype(str))
+                index_of(prev.unit_ids.astype(str), np.asarray(unit_ids).astype(str))
                 if previous_match is None
                 else np.asarray(previous_match, dtype=np.int64)
             )
@@ -586,13 +587,3 @@ def recentre_median(
         med = float(np.median(out[members] - constraints.offset[members]))
         out[component == comp_of_group[c]] += constraints.level[c] - med
     return out
-
-
-def _lookup(table: NDArray[Any], keys: NDArray[Any]) -> NDArray[np.int64]:
-    """Index of each key in ``table`` (unique strings), -1 when absent."""
-    if table.shape[0] == 0:
-        return np.full(keys.shape[0], -1, dtype=np.int64)
-    sorter = np.argsort(table)
-    pos = np.clip(np.searchsorted(table, keys, sorter=sorter), 0, table.shape[0] - 1)
-    idx = sorter[pos]
-    return np.where(table[idx] == keys, idx, -1).astype(np.int64)

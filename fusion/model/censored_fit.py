@@ -131,9 +131,7 @@ from __future__ import annotations
 
 import dataclasses
 import warnings
-from collections.abc import Callable
 from dataclasses import dataclass
-from enum import StrEnum
 from typing import TYPE_CHECKING, Any, Literal
 
 import numpy as np
@@ -149,14 +147,24 @@ from fusion.model.anchors import (
     recentre_median,
     reference_event_priors,
 )
-from fusion.model.eb_priors import EBPrior, prior_stable, refreshed_prior
-from fusion.model.forgetting import match_previous_units, unit_station_ids
-from fusion.model.reml_em import (
+from fusion.model.eb_priors import EBPrior, prior_stable
+from fusion.model.fit_steps import (
     ConvergenceTracker,
-    RemlEmFit,
-    squarem_step,
+    Extrapolation,
+    StationFitResult,
+    anchor_level,
+    check_iteration_parameters,
+    effective_dof,
+    moderated_variance,
+    parameter_error,
+    raw_variance,
+    refresh_due,
+    refresh_prior,
+    student_t_weight,
     t_weight_consistency,
 )
+from fusion.model.forgetting import match_previous_units, unit_station_ids
+from fusion.model.reml_em import RemlEmFit
 from fusion.network.censoring import (
     CensoredEventData,
     fit_censored,
@@ -170,18 +178,15 @@ from fusion.observations import ObservationSet
 from stations.errors import ConfigError, ConvergenceWarning, InsufficientDataError
 
 if TYPE_CHECKING:
-    from fusion.model.thresholds import DetectionCurves
+    pass
 
 __all__ = [
     "CensoredStationFit",
-    "NondetectionMode",
-    "NondetectionOutcome",
     "OutlierModel",
     "censoring_rows",
     "fit_censored_stations",
     "loo_predictor",
     "nondetection_moments",
-    "refit_with_nondetections",
 ]
 
 OutlierModel = Literal["mixture", "student_t", "none"]
@@ -225,7 +230,7 @@ def censoring_rows(obs: ObservationSet) -> tuple[int, int]:
 
 
 @dataclass(frozen=True, slots=True, eq=False)
-class CensoredStationFit:
+class CensoredStationFit(StationFitResult):
     """Result of :func:`fit_censored_stations` (magnitude units and their squares).
 
     Per-unit arrays have shape (K,) and follow ``station_ids``; per-event arrays shape (N,);
@@ -305,16 +310,6 @@ class CensoredStationFit:
     n_iter: int
     converged: bool
     soft_threshold_sd: float
-
-    @property
-    def sigma(self) -> NDArray[np.float64]:
-        """σ̃_i, magnitude units."""
-        return np.sqrt(self.sigma2)
-
-    @property
-    def bias_se(self) -> NDArray[np.float64]:
-        """sqrt(Var b̂_i), magnitude units."""
-        return np.sqrt(self.bias_var)
 
     def as_reml_fit(self, base: RemlEmFit) -> RemlEmFit:
         """``base`` (the warm start) carrying this fit's parameters, events and detections.
@@ -593,7 +588,7 @@ def _outlier_weights(
         return _Outliers(omega=ones, clean=ones, qfac=ones, pi=None, eps=eps, tau2=tau2)
     e, v, ok = _loo_residuals(c, es, b, sigma2)
     if model == "student_t":
-        omega = np.where(ok, (nu + 1.0) / (nu + e * e / v), 1.0)
+        omega = np.where(ok, student_t_weight(e * e / v, nu), 1.0)
         qfac = np.where(ok, omega / kappa, 1.0)
         return _Outliers(omega=omega, clean=ones, qfac=qfac, pi=None, eps=eps, tau2=tau2)
     # Contaminated normal: posterior outlier probability, then the EM updates of ε and τ².
@@ -772,18 +767,6 @@ def _sigma_sums(
     return _SigmaSums(q=q + v_det, q_data=q, n=n)
 
 
-def _sigma_step(
-    sums: _SigmaSums, prior: EBPrior, active: NDArray[np.bool_], s2_old: NDArray[np.float64]
-) -> NDArray[np.float64]:
-    if np.isinf(prior.d0):
-        return np.where(active, prior.s0_2, s2_old)
-    den = prior.d0 + sums.n
-    ok = active & (den > 0)
-    s2 = s2_old.copy()
-    s2[ok] = (prior.d0 * prior.s0_2 + sums.q[ok]) / den[ok]
-    return np.maximum(s2, 1e-12 * prior.s0_2)
-
-
 def _sensitivities(
     c: _Cells, es: _EventStep
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
@@ -800,14 +783,16 @@ def _dof(
 ) -> NDArray[np.float64]:
     """d_i = Σ γ (1 − w_ij) over the cells of the σ-step (module docstring, step 5)."""
     w_d, w_c, w_u = w
-    in_d = c.sigma_event[c.d_ev]
-    in_c = c.sigma_event[c.c_ev]
-    in_u = c.sigma_event[c.u_ev]
-    return (
-        c.per_station(c.d_st, c.d_g * ow.clean * in_d * (1.0 - w_d))
-        + c.per_station(c.c_st, c.c_g * in_c * (1.0 - w_c))
-        + c.per_station(c.u_st, c.u_g * in_u * (1.0 - w_u))
+    g_d = c.d_g * ow.clean * c.sigma_event[c.d_ev]
+    g_c = c.c_g * c.sigma_event[c.c_ev]
+    g_u = c.u_g * c.sigma_event[c.u_ev]
+    weight = c.per_station(c.d_st, g_d) + c.per_station(c.c_st, g_c) + c.per_station(c.u_st, g_u)
+    share = (
+        c.per_station(c.d_st, g_d * w_d)
+        + c.per_station(c.c_st, g_c * w_c)
+        + c.per_station(c.u_st, g_u * w_u)
     )
+    return effective_dof(weight, share)
 
 
 # ------------------------------------------------------------------------------------------
@@ -958,15 +943,13 @@ def _bias_covariance(
 def _anchor_result(base: AnchorResult, an: _Anchoring, b: NDArray[np.float64]) -> AnchorResult:
     """The warm start's anchor result with the level recomputed from the new biases."""
     ref_w = an.cons.reference_weight
-    in_ref = ref_w > 0
-    if not np.any(in_ref) or an.kind not in (AnchorKind.REFERENCE_SET, AnchorKind.MEDIAN):
+    if not np.any(ref_w > 0) or an.kind not in (AnchorKind.REFERENCE_SET, AnchorKind.MEDIAN):
         return base
-    value = float(np.median(b[in_ref])) if an.kind is AnchorKind.MEDIAN else float(ref_w @ b)
-    return dataclasses.replace(base, value=value)
+    return dataclasses.replace(base, value=anchor_level(an.kind, ref_w, b, base.value))
 
 
 # ------------------------------------------------------------------------------------------
-# The fit (convergence: fusion.model.reml_em.ConvergenceTracker and squarem_step)
+# The fit (convergence and extrapolation: fusion.model.fit_steps)
 # ------------------------------------------------------------------------------------------
 
 
@@ -980,30 +963,25 @@ def _check(
     tol_log_sigma: float,
     eb_every: int,
 ) -> None:
-    def bad(name: str, rule: str, value: object) -> ConfigError:
-        return ConfigError(
-            f"The {name!r} parameter of fit_censored_stations must be {rule}. "
-            f"Got {value!r} instead."
-        )
-
+    where = "fit_censored_stations"
     if not (soft_threshold_sd >= 0 and np.isfinite(soft_threshold_sd)):
-        raise bad("soft_threshold_sd", "a float in the range [0, inf)", soft_threshold_sd)
+        raise parameter_error(
+            where, "soft_threshold_sd", "a float in the range [0, inf)", soft_threshold_sd
+        )
     if not (0 <= min_detection_probability < 1):
-        raise bad(
-            "min_detection_probability", "a float in the range [0, 1)", min_detection_probability
+        raise parameter_error(
+            where,
+            "min_detection_probability",
+            "a float in the range [0, 1)",
+            min_detection_probability,
         )
     if outliers not in ("mixture", "student_t", "none"):
-        raise bad("outliers", "one of 'mixture', 'student_t', 'none'", outliers)
-    if not (nu > 0 and np.isfinite(nu)):
-        raise bad("nu", "a float in the range (0, inf)", nu)
-    if not (isinstance(max_iter, int | np.integer) and max_iter >= 1):
-        raise bad("max_iter", "an int in the range [1, inf)", max_iter)
-    if not tol_bias > 0:
-        raise bad("tol_bias", "a float in the range (0, inf)", tol_bias)
-    if not tol_log_sigma > 0:
-        raise bad("tol_log_sigma", "a float in the range (0, inf)", tol_log_sigma)
+        raise parameter_error(where, "outliers", "one of 'mixture', 'student_t', 'none'", outliers)
+    check_iteration_parameters(
+        where, nu=nu, max_iter=max_iter, tol_bias=tol_bias, tol_log_sigma=tol_log_sigma
+    )
     if not (isinstance(eb_every, int | np.integer) and eb_every >= 0):
-        raise bad("eb_every", "an int in the range [0, inf)", eb_every)
+        raise parameter_error(where, "eb_every", "an int in the range [0, inf)", eb_every)
 
 
 def fit_censored_stations(
@@ -1098,6 +1076,47 @@ def fit_censored_stations(
         tol_log_sigma,
         eb_every,
     )
+    c, an, g_all = _cells_and_anchoring(obs, start, anchor, gamma, unit_station, outliers)
+    opt = _Options(
+        start=start,
+        an=an,
+        gamma=g_all,
+        active=start.connectivity.component >= 0,
+        mu0=float(an.cons.prior_mean),
+        soft=float(soft_threshold_sd),
+        p_min=float(min_detection_probability),
+        outliers=outliers,
+        nu=float(nu),
+        kappa=t_weight_consistency(float(nu)) if outliers == "student_t" else 1.0,
+        max_iter=max_iter,
+        tol_bias=tol_bias,
+        tol_log_sigma=tol_log_sigma,
+        eb_every=eb_every,
+        newton_max_iter=newton_max_iter,
+        accelerate=accelerate,
+    )
+    st = _starting_state(c, opt)
+    _iterate(st, opt)
+    if not st.converged:
+        warnings.warn(
+            f"fit_censored_stations stopped at max_iter={max_iter} before the distance to the "
+            f"fixed point fell below tol_bias={tol_bias} and tol_log_sigma={tol_log_sigma}; "
+            "raise max_iter or loosen the tolerances",
+            ConvergenceWarning,
+            stacklevel=2,
+        )
+    return _result(obs, st, opt, dense_cov_max)
+
+
+def _cells_and_anchoring(
+    obs: ObservationSet,
+    start: RemlEmFit,
+    anchor: Anchor,
+    gamma: NDArray[np.float64] | None,
+    unit_station: NDArray[Any] | None,
+    outliers: OutlierModel,
+) -> tuple[_Cells, _Anchoring, NDArray[np.float64]]:
+    """Check ``start`` and ``gamma`` against ``obs``; build the cells and the anchoring."""
     K, N = obs.n_stations, obs.n_events
     if start.bias.shape != (K,) or start.event_magnitude.shape != (N,):
         raise ConfigError(
@@ -1120,154 +1139,163 @@ def fit_censored_stations(
             f"no {obs.magnitude_type} event holds a detection of a fitted station together "
             "with another reading or non-detection; the censored fit has nothing to use"
         )
-    an = _anchoring(obs, start, anchor, u_station)
-    mu0 = float(an.cons.prior_mean)
-    soft = float(soft_threshold_sd)
-    p_min = float(min_detection_probability)
-    kappa = t_weight_consistency(float(nu)) if outliers == "student_t" else 1.0
+    return c, _anchoring(obs, start, anchor, u_station), g_all
 
+
+@dataclass(slots=True, eq=False)
+class _Options:
+    """Inputs and options that stay fixed during the iterations of one censored fit."""
+
+    start: RemlEmFit
+    an: _Anchoring
+    gamma: NDArray[np.float64]
+    active: NDArray[np.bool_]
+    mu0: float
+    soft: float
+    p_min: float
+    outliers: OutlierModel
+    nu: float
+    kappa: float
+    max_iter: int
+    tol_bias: float
+    tol_log_sigma: float
+    eb_every: int
+    newton_max_iter: int
+    accelerate: bool
+
+
+@dataclass(slots=True, eq=False)
+class _State:
+    """The iterate of the censored fit; ``c`` holds the currently selected censored cells."""
+
+    c_all: _Cells
+    c: _Cells
+    b: NDArray[np.float64]
+    sigma2: NDArray[np.float64]
+    M: NDArray[np.float64]
+    omega: NDArray[np.float64]
+    eps: float
+    tau2: float
+    prior: EBPrior
+    tau2_floor: float
+    n_iter: int = 0
+    converged: bool = False
+
+
+def _starting_state(c: _Cells, opt: _Options) -> _State:
+    """Warm start from the REML-EM fit: b, σ², priors, mixture, weights and M̂ (module doc)."""
+    start = opt.start
     b = start.bias.astype(np.float64).copy()
     sigma2 = start.sigma2.astype(np.float64).copy()
     prior = start.prior
-    tau2_floor = _TAU2_FLOOR * prior.s0_2
     eps, tau2 = _initial_mixture(c, start, b, prior.s0_2)
     omega = np.ones(c.d_row.shape[0])
-    if outliers != "none":
+    if opt.outliers != "none":
         w0 = start.row_weight[c.d_row]
         omega = np.where(np.isfinite(w0), np.minimum(w0, 1.0), 1.0)
     M = _initial_magnitudes(c, start, b, sigma2, omega)
-    if p_min > 0.0:
-        c = _drop_hopeless(c, M, b, sigma2, soft)
-
-    def iterate(
-        c: _Cells,
-        b: NDArray[np.float64],
-        sigma2: NDArray[np.float64],
-        M: NDArray[np.float64],
-        omega: NDArray[np.float64],
-        eps: float,
-        tau2: float,
-    ) -> tuple[_EventStep, _Outliers]:
-        es = _event_step(c, b, sigma2, omega, M, start.pairs, soft, newton_max_iter)
-        ow = _outlier_weights(c, es, b, sigma2, outliers, float(nu), kappa, eps, tau2, tau2_floor)
-        if outliers != "none":
-            es = _event_step(c, b, sigma2, ow.omega, es.M, start.pairs, soft, newton_max_iter)
-        return es, ow
-
-    tracker = ConvergenceTracker()
-    theta: list[NDArray[np.float64]] = []
-    max_alpha = _MAX_ALPHA
-    post_jump: float | None = None
-    converged = False
-    n_iter = 0
-    eb_on = eb_every > 0
-    c_all = c
-    for it in range(max_iter):
-        n_iter = it + 1
-        # C is re-selected in the first iterations and at each EB refresh, and held fixed in
-        # between: a non-detection near the probability cut-off would otherwise flip in and
-        # out and the iteration would cycle instead of converging.
-        if it < _RESELECT_ITERATIONS or (eb_on and (it + 1) % eb_every == 0):
-            c = _select_censored(c_all, M, b, sigma2, soft, p_min)
-        es, ow = iterate(c, b, sigma2, M, omega, eps, tau2)
-        M, omega, eps, tau2 = es.M, ow.omega, ow.eps, ow.tau2
-        mom = _moments(c, es, b, sigma2, soft)
-        b_new = _b_step(c, es, mom, ow, sigma2, prior, mu0, active, b)
-        b_new, M = _reanchor(b_new, M, an, g_all)
-        ss = _sigma_sums(c, es, mom, ow, b_new)
-        sigma2_new = _sigma_step(ss, prior, active, sigma2)
-        db = float(np.max(np.abs(b_new - b)[active], initial=0.0))
-        dls = float(np.max(np.abs(0.5 * np.log(sigma2_new / sigma2))[active], initial=0.0))
-        tracker.add(db, dls)
-        b, sigma2 = b_new, sigma2_new
-        refresh_due = eb_on and (it == 1 or (it + 1) % eb_every == 0)
-        err_b, err_s = tracker.distance()
-        done = it >= 2 and err_b < tol_bias and err_s < tol_log_sigma
-        if refresh_due or (done and eb_on):
-            new_prior = _refresh_prior(c, es, ow, ss, b, prior, mu0, active)
-            stable = prior_stable(prior, new_prior, tol_log_sigma)
-            prior = new_prior
-            tau2_floor = _TAU2_FLOOR * prior.s0_2
-            if not stable:
-                theta.clear()
-                tracker.break_chain()
-                if done:
-                    continue
-        if done:
-            converged = True
-            break
-        if post_jump is not None and max(db, dls) > 2.0 * post_jump:
-            max_alpha = max(1.0, 0.5 * max_alpha)  # the jump overshot: be more careful
-        post_jump = None
-        theta.append(np.concatenate([b[active], np.log(sigma2[active])]))
-        if accelerate and len(theta) >= 3 and tracker.max_rate > 0.6:
-            jumped = squarem_step(theta[-3], theta[-2], theta[-1], max_alpha)
-            if jumped is not None:
-                n_a = int(active.sum())
-                b = b.copy()
-                b[active] = jumped[:n_a]
-                log_s0 = np.log(prior.s0_2)
-                sigma2 = sigma2.copy()
-                sigma2[active] = np.exp(np.clip(jumped[n_a:], log_s0 - 12.0, log_s0 + 12.0))
-                b, M = _reanchor(b, M, an, g_all)
-                post_jump = max(db, dls)
-                theta.clear()
-                tracker.break_chain()
-    if not converged:
-        warnings.warn(
-            f"fit_censored_stations stopped at max_iter={max_iter} before the distance to the "
-            f"fixed point fell below tol_bias={tol_bias} and tol_log_sigma={tol_log_sigma}; "
-            "raise max_iter or loosen the tolerances",
-            ConvergenceWarning,
-            stacklevel=2,
-        )
-    return _result(
-        obs,
-        c,
-        start,
-        an,
-        b,
-        sigma2,
-        M,
-        omega,
-        eps,
-        tau2,
-        prior,
-        active,
-        outliers,
-        soft,
-        newton_max_iter,
-        dense_cov_max,
-        n_iter,
-        converged,
-        g_all,
-        float(nu),
+    if opt.p_min > 0.0:
+        c = _drop_hopeless(c, M, b, sigma2, opt.soft)
+    return _State(
+        c_all=c,
+        c=c,
+        b=b,
+        sigma2=sigma2,
+        M=M,
+        omega=omega,
+        eps=eps,
+        tau2=tau2,
+        prior=prior,
+        tau2_floor=_TAU2_FLOOR * prior.s0_2,
     )
 
 
+def _event_and_outlier_step(st: _State, opt: _Options) -> tuple[_EventStep, _Outliers]:
+    """Steps 1–2: event step, outlier weights, and the event step again with the new weights."""
+    pairs = opt.start.pairs
+    es = _event_step(st.c, st.b, st.sigma2, st.omega, st.M, pairs, opt.soft, opt.newton_max_iter)
+    ow = _outlier_weights(
+        st.c, es, st.b, st.sigma2, opt.outliers, opt.nu, opt.kappa, st.eps, st.tau2, st.tau2_floor
+    )
+    if opt.outliers != "none":
+        es = _event_step(
+            st.c, st.b, st.sigma2, ow.omega, es.M, pairs, opt.soft, opt.newton_max_iter
+        )
+    return es, ow
+
+
+def _iterate(st: _State, opt: _Options) -> None:
+    """The generalised ECM iterations with EB refreshes and SQUAREM jumps (module docstring)."""
+    active = opt.active
+    tracker = ConvergenceTracker()
+    extrapolation = Extrapolation(tracker, enabled=opt.accelerate, max_alpha=_MAX_ALPHA)
+    eb_on = opt.eb_every > 0
+    for it in range(opt.max_iter):
+        st.n_iter = it + 1
+        # C is re-selected in the first iterations and at each EB refresh, and held fixed in
+        # between: a non-detection near the probability cut-off would otherwise flip in and
+        # out and the iteration would cycle instead of converging.
+        if it < _RESELECT_ITERATIONS or (eb_on and (it + 1) % opt.eb_every == 0):
+            st.c = _select_censored(st.c_all, st.M, st.b, st.sigma2, opt.soft, opt.p_min)
+        es, ow = _event_and_outlier_step(st, opt)
+        st.M, st.omega, st.eps, st.tau2 = es.M, ow.omega, ow.eps, ow.tau2
+        c = st.c
+        mom = _moments(c, es, st.b, st.sigma2, opt.soft)
+        b_new = _b_step(c, es, mom, ow, st.sigma2, st.prior, opt.mu0, active, st.b)
+        b_new, st.M = _reanchor(b_new, st.M, opt.an, opt.gamma)
+        ss = _sigma_sums(c, es, mom, ow, b_new)
+        sigma2_new = moderated_variance(st.prior, (ss.q,), ss.n, where=active, previous=st.sigma2)
+        db = float(np.max(np.abs(b_new - st.b)[active], initial=0.0))
+        dls = float(np.max(np.abs(0.5 * np.log(sigma2_new / st.sigma2))[active], initial=0.0))
+        tracker.add(db, dls)
+        st.b, st.sigma2 = b_new, sigma2_new
+        err_b, err_s = tracker.distance()
+        done = it >= 2 and err_b < opt.tol_bias and err_s < opt.tol_log_sigma
+        if refresh_due(it, opt.eb_every) or (done and eb_on):
+            new_prior = _refresh_prior(c, es, ow, ss, st.b, st.prior, opt.mu0, active)
+            stable = prior_stable(st.prior, new_prior, opt.tol_log_sigma)
+            st.prior = new_prior
+            st.tau2_floor = _TAU2_FLOOR * new_prior.s0_2
+            if not stable:
+                extrapolation.reset()
+                if done:
+                    continue
+        if done:
+            st.converged = True
+            return
+        theta = np.concatenate([st.b[active], np.log(st.sigma2[active])])
+        jumped = extrapolation.after_step(max(db, dls), theta, tracker.max_rate)
+        if jumped is not None:
+            _install_jump(st, opt, jumped)
+
+
+def _install_jump(st: _State, opt: _Options, jumped: NDArray[np.float64]) -> None:
+    """Set (b, log σ²) of the active units to a SQUAREM iterate and re-anchor."""
+    active = opt.active
+    n_a = int(active.sum())
+    b = st.b.copy()
+    b[active] = jumped[:n_a]
+    log_s0 = np.log(st.prior.s0_2)
+    sigma2 = st.sigma2.copy()
+    sigma2[active] = np.exp(np.clip(jumped[n_a:], log_s0 - 12.0, log_s0 + 12.0))
+    st.sigma2 = sigma2
+    st.b, st.M = _reanchor(b, st.M, opt.an, opt.gamma)
+
+
 def _result(
-    obs: ObservationSet,
-    c: _Cells,
-    start: RemlEmFit,
-    an: _Anchoring,
-    b: NDArray[np.float64],
-    sigma2: NDArray[np.float64],
-    M: NDArray[np.float64],
-    omega: NDArray[np.float64],
-    eps: float,
-    tau2: float,
-    prior: EBPrior,
-    active: NDArray[np.bool_],
-    outliers: OutlierModel,
-    soft: float,
-    newton_max_iter: int,
-    dense_cov_max: int,
-    n_iter: int,
-    converged: bool,
-    gamma: NDArray[np.float64],
-    nu: float,
+    obs: ObservationSet, st: _State, opt: _Options, dense_cov_max: int
 ) -> CensoredStationFit:
     """Final event step and the outputs at the final parameters (weights and C held fixed)."""
+    c, start, an, active, outliers = st.c, opt.start, opt.an, opt.active, opt.outliers
+    b, sigma2, M, omega, eps, tau2 = st.b, st.sigma2, st.M, st.omega, st.eps, st.tau2
+    prior, soft, newton_max_iter, gamma, nu = (
+        st.prior,
+        opt.soft,
+        opt.newton_max_iter,
+        opt.gamma,
+        opt.nu,
+    )
+    n_iter, converged = st.n_iter, st.converged
     K, N = obs.n_stations, obs.n_events
     es = _event_step(c, b, sigma2, omega, M, start.pairs, soft, newton_max_iter)
     # A4 holds for the final M̂ exactly after one more constant shift (M + b unchanged, so the
@@ -1281,9 +1309,7 @@ def _result(
     ss = _sigma_sums(c, es, mom, ow, b)
     w = _sensitivities(c, es)
     dof = _dof(c, es, ow, w)
-    raw = np.full(K, np.nan)
-    pos = dof > 0
-    raw[pos] = ss.q_data[pos] / dof[pos]
+    raw = raw_variance(ss.q_data, dof)
     bias_var, bias_cov = _bias_covariance(c, es, prior, active, an, dense_cov_max)
     out = ~active
     bias_var[out] = start.bias_var[out]
@@ -1377,15 +1403,16 @@ def _refresh_prior(
     active: NDArray[np.bool_],
 ) -> EBPrior:
     """EB refresh of (d0, s0², τ_b²) (module docstring, step 5)."""
-    dof = _dof(c, es, ow, _sensitivities(c, es))
-    s2 = np.full(c.n_st, np.nan)
-    pos = active & (dof > 0)
-    s2[pos] = ss.q_data[pos] / dof[pos]
-    diag = _diagonal_information(c, es)
-    var = np.full(c.n_st, np.inf)
-    ok = active & (diag > 0)
-    var[ok] = 1.0 / diag[ok]
-    return refreshed_prior(s2, dof, b, var, c.per_station(c.d_st, c.d_g), prior, mu0)
+    return refresh_prior(
+        ss.q_data,
+        _dof(c, es, ow, _sensitivities(c, es)),
+        _diagonal_information(c, es),
+        b,
+        c.per_station(c.d_st, c.d_g),
+        prior,
+        mu0,
+        where=active,
+    )
 
 
 # ------------------------------------------------------------------------------------------
@@ -1465,242 +1492,3 @@ def loo_predictor(obs: ObservationSet, fit: RemlEmFit | CensoredStationFit) -> N
     plain = used & (fit.row_kind == 0) & ~obs.detected
     out[plain] = (M[ev] + b)[plain]
     return out
-
-
-# ------------------------------------------------------------------------------------------
-# What the station model runs: thresholds, joint fit or the safe-cell fallback
-# ------------------------------------------------------------------------------------------
-
-
-class NondetectionMode(StrEnum):
-    """How a station model used the non-detections (:func:`refit_with_nondetections`)."""
-
-    unused = "unused"  #: no censoring information (or switched off): detections only
-    known_thresholds = "known-thresholds"  #: joint fit with the stored thresholds
-    estimated_thresholds = "estimated-thresholds"  #: joint fit, missing thresholds estimated
-    #: no thresholds: fit on safe cells only (the fallback of docs/censoring.md §8)
-    safe_cells = "safe-cells"
-
-
-@dataclass(frozen=True, slots=True, eq=False)
-class NondetectionOutcome:
-    """What :func:`refit_with_nondetections` did.
-
-    Attributes
-    ----------
-    mode : NondetectionMode
-    fit : RemlEmFit
-        The fit to hand on (the warm start itself when ``mode`` is ``unused``), on the rows of
-        the observations given.
-    censored : CensoredStationFit or None
-        The joint fit (known or estimated thresholds).
-    curves : DetectionCurves or None
-        Detection curves (estimated thresholds, or the safe-cell fallback).
-    observations : ObservationSet
-        The observations with imputed thresholds (the input otherwise).
-    n_nondetections : int
-        Non-detections in the final censored set C.
-    n_imputed : int
-        Non-detections that received an estimated threshold.
-    n_safe : int
-        Detections kept by the safe-cell rule (0 unless ``mode`` is ``safe-cells``).
-    rounds : int
-        Threshold-estimation rounds run.
-    """
-
-    mode: NondetectionMode
-    fit: RemlEmFit
-    censored: CensoredStationFit | None
-    curves: DetectionCurves | None
-    observations: ObservationSet
-    n_nondetections: int = 0
-    n_imputed: int = 0
-    n_safe: int = 0
-    rounds: int = 0
-
-    @classmethod
-    def skipped(cls, obs: ObservationSet, fit: RemlEmFit) -> NondetectionOutcome:
-        """Non-detections not used (switched off): the detections-only fit is handed on."""
-        return cls(
-            mode=NondetectionMode.unused, fit=fit, censored=None, curves=None, observations=obs
-        )
-
-    def summary(self) -> dict[str, Any]:
-        """JSON-ready counts for the model version's metadata."""
-        cf = self.censored
-        return {
-            "mode": str(self.mode),
-            "n_nondetections_used": int(self.n_nondetections),
-            "n_thresholds_estimated": int(self.n_imputed),
-            "n_safe_cells": int(self.n_safe),
-            "threshold_rounds": int(self.rounds),
-            "n_stations_with_curve": 0 if self.curves is None else int(self.curves.fitted.sum()),
-            "censored_fit_iterations": None if cf is None else int(cf.n_iter),
-            "censored_fit_converged": None if cf is None else bool(cf.converged),
-        }
-
-
-def _expand_rows(fit: RemlEmFit, rows: NDArray[np.int64], n_obs: int) -> RemlEmFit:
-    """A fit made on a row subset, with its row arrays placed on the full row table."""
-
-    def place(x: NDArray[np.float64]) -> NDArray[np.float64]:
-        out = np.full(n_obs, np.nan)
-        out[rows] = x
-        return out
-
-    return dataclasses.replace(
-        fit,
-        row_weight=place(fit.row_weight),
-        row_gls_weight=place(fit.row_gls_weight),
-        residual=place(fit.residual),
-    )
-
-
-def refit_with_nondetections(
-    obs: ObservationSet,
-    start: RemlEmFit,
-    *,
-    anchor: Anchor,
-    gamma: NDArray[np.float64] | None = None,
-    unit_station: NDArray[Any] | None = None,
-    refit: Callable[[ObservationSet], RemlEmFit] | None = None,
-    soft_threshold_sd: float = 0.0,
-    min_detection_probability: float = 0.01,
-    estimate_thresholds: bool = True,
-    threshold_rounds: int = 3,
-    min_threshold_cells: int = 10,
-    safe_cells_fallback: bool = False,
-    safe_margin_sd: float = 2.0,
-    max_iter: int = 200,
-    tol_bias: float = 1e-4,
-    tol_log_sigma: float = 1e-3,
-) -> NondetectionOutcome:
-    """Use the non-detections in the station fit as far as the data allow.
-
-    1. Non-detections without a stored threshold (and ``estimate_thresholds``): probit
-       detection curves (:func:`fusion.model.thresholds.fit_detection_curves`) on the
-       leave-one-out predictor of the current fit (:func:`loo_predictor`), imputation of the
-       missing thresholds, joint fit; ``threshold_rounds`` rounds, each starting its curves
-       from the previous round's censored fit (measured on the censor simulation of
-       docs/simulation.md with hidden thresholds: mean threshold error +0.17, +0.08, +0.06, +0.05
-       after rounds 1–4). Mode ``estimated-thresholds``.
-    2. Otherwise, with stored thresholds or clipped readings: one joint fit
-       (:func:`fit_censored_stations`). Mode ``known-thresholds``.
-    3. Otherwise, with ``safe_cells_fallback`` and a ``refit``: detection curves from the
-       detections alone (:func:`fusion.model.thresholds.curves_from_detections`), the safe cells
-       (:func:`fusion.model.thresholds.safe_cells`) and a refit on them. Mode ``safe-cells``; the
-       network estimate should then flag small events
-       (:func:`fusion.model.thresholds.flag_detection_bias`).
-    4. Otherwise the warm start is handed on unchanged (mode ``unused``).
-
-    Parameters
-    ----------
-    obs : ObservationSet
-        The observations ``start`` was fitted on.
-    start : RemlEmFit
-        The detections-only REML-EM fit.
-    anchor : Anchor
-        Its anchor.
-    gamma, unit_station
-        As in :func:`fit_censored_stations`.
-    refit : callable, optional
-        ``refit(observations) -> RemlEmFit``: the REML-EM with the caller's settings, used by
-        the safe-cell fallback on the subset of safe rows (same unit and event tables).
-    soft_threshold_sd, min_detection_probability, max_iter, tol_bias, tol_log_sigma
-        Passed to :func:`fit_censored_stations`.
-    estimate_thresholds : bool, default=True
-        Estimate missing thresholds (step 1).
-    threshold_rounds : int, default=3
-        Rounds of step 1.
-    min_threshold_cells : int, default=10
-        Detections and non-detections a station needs for a probit curve.
-    safe_cells_fallback : bool, default=False
-        Run step 3 when nothing else applies.
-    safe_margin_sd : float, default=2.0
-        Margin of the safe-cell rule, in units of σ̃_i.
-
-    Returns
-    -------
-    NondetectionOutcome
-    """
-    from fusion.model.thresholds import (
-        curves_from_detections,
-        fit_detection_curves,
-        impute_thresholds,
-        safe_cells,
-    )
-
-    if not (isinstance(threshold_rounds, int | np.integer) and threshold_rounds >= 1):
-        raise ConfigError(
-            "The 'threshold_rounds' parameter of refit_with_nondetections must be an int in "
-            f"the range [1, inf). Got {threshold_rounds!r} instead."
-        )
-    opts: dict[str, Any] = {
-        "anchor": anchor,
-        "gamma": gamma,
-        "unit_station": unit_station,
-        "soft_threshold_sd": soft_threshold_sd,
-        "min_detection_probability": min_detection_probability,
-        "max_iter": max_iter,
-        "tol_bias": tol_bias,
-        "tol_log_sigma": tol_log_sigma,
-    }
-    n_known, n_clip = censoring_rows(obs)
-    missing = ~obs.detected & ~np.isfinite(obs.threshold)
-    cf: CensoredStationFit | None = None
-    curves: DetectionCurves | None = None
-    cur_obs = obs
-    n_imputed = 0
-    rounds = 0
-    mode = NondetectionMode.unused
-    if estimate_thresholds and np.any(missing):
-        cur_fit: RemlEmFit | CensoredStationFit = start
-        for _ in range(int(threshold_rounds)):
-            predictor = loo_predictor(cur_obs, cur_fit)
-            new_curves = fit_detection_curves(
-                obs,
-                predictor,
-                min_detections=min_threshold_cells,
-                min_nondetections=min_threshold_cells,
-            )
-            filled, imputed = impute_thresholds(obs, new_curves)
-            if not np.any(imputed):
-                break
-            rounds += 1
-            curves = new_curves
-            cf = fit_censored_stations(filled, start, **opts)
-            cur_obs, cur_fit = filled, cf
-            n_imputed = int(imputed.sum())
-        if cf is not None:
-            mode = NondetectionMode.estimated_thresholds
-    if cf is None and n_known + n_clip > 0:
-        cf = fit_censored_stations(obs, start, **opts)
-        mode = NondetectionMode.known_thresholds
-    if cf is not None:
-        return NondetectionOutcome(
-            mode=mode,
-            fit=cf.as_reml_fit(start),
-            censored=cf,
-            curves=curves,
-            observations=cur_obs,
-            n_nondetections=int(np.count_nonzero(cf.row_kind == 2)),
-            n_imputed=n_imputed,
-            rounds=rounds,
-        )
-    if safe_cells_fallback and refit is not None:
-        curves = curves_from_detections(obs, min_detections=max(3 * min_threshold_cells, 3))
-        if np.any(curves.fitted):
-            predictor = loo_predictor(obs, start)
-            safe = safe_cells(obs, curves, predictor, start.sigma, margin_sd=safe_margin_sd)
-            rows = np.flatnonzero(safe)
-            if rows.shape[0]:
-                sub = refit(obs.subset(safe))
-                return NondetectionOutcome(
-                    mode=NondetectionMode.safe_cells,
-                    fit=_expand_rows(sub, rows, obs.n_obs),
-                    censored=None,
-                    curves=curves,
-                    observations=obs,
-                    n_safe=int(rows.shape[0]),
-                )
-    return NondetectionOutcome.skipped(obs, start)

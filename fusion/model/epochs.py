@@ -423,19 +423,16 @@ def detect_bias_steps(
         sel = np.flatnonzero(active[grp] & (idx >= seg_start[grp]))
         gs = grp[sel]
         pos = sel - seg_start[gs]
-        s_first, s_seg = _segment_bounds(gs)
-        zs = z[sel]
-        prev_sum = _grouped_cumsum(zs, s_seg, s_first) - zs
-        with np.errstate(invalid="ignore", divide="ignore"):
-            x = (zs - prev_sum / pos) / np.sqrt(1.0 + 1.0 / pos)
-        if reference == "model":
-            literal = seg_start[gs] == g_first[gs]
-            x = np.where(literal, zs, x)
-        x = x * scale[gs]
-        if clip is not None:
-            x = np.clip(x, -clip, clip)
-        mon = pos >= m
-        msel = np.flatnonzero(mon)
+        x = _standardised_increments(
+            z[sel],
+            gs,
+            pos,
+            seg_start[gs] == g_first[gs],
+            scale[gs],
+            reference=reference,
+            clip=clip,
+        )
+        msel = np.flatnonzero(pos >= m)  # rows monitored (m readings before them)
         mg = gs[msel]
         s_pos, s_neg = two_sided_cusum(x[msel], mg, k)
         cus_p = np.full(sel.shape[0], np.nan)
@@ -446,30 +443,7 @@ def detect_bias_steps(
         a_groups, a_first = np.unique(mg[alarm_rows], return_index=True)
         a_loc = alarm_rows[a_first]  # index into msel
         up = s_pos[a_loc] >= s_neg[a_loc]
-        m_first, _ = _segment_bounds(mg)
-        grp_mfirst = np.full(n_groups, -1, dtype=np.int64)
-        grp_mfirst[mg[m_first]] = m_first
-        grp_mend = np.full(n_groups, -1, dtype=np.int64)
-        grp_mend[mg[m_first]] = np.r_[m_first[1:], msel.shape[0]]
-        local = np.arange(msel.shape[0], dtype=np.int64)
-        big = np.int64(msel.shape[0])
-        change_loc = np.empty(a_loc.shape[0], dtype=np.int64)
-        end_loc = np.empty(a_loc.shape[0], dtype=np.int64)
-        for s_arr, pick in ((s_pos, up), (s_neg, ~up)):
-            zero = s_arr == 0.0
-            last_zero = np.maximum.accumulate(np.where(zero, local, -1))
-            next_zero = np.minimum.accumulate(np.where(zero, local, big)[::-1])[::-1]
-            al = a_loc[pick]
-            ag = a_groups[pick]
-            change_loc[pick] = np.maximum(last_zero[al], grp_mfirst[ag] - 1) + 1
-            end_loc[pick] = np.minimum(next_zero[al], grp_mend[ag])
-        # Peak of the alarming sum over [alarm, end of its excursion).
-        peak = np.empty(a_loc.shape[0])
-        for s_arr, pick in ((s_pos, up), (s_neg, ~up)):
-            if np.any(pick):
-                bounds = np.c_[a_loc[pick], end_loc[pick]].ravel()
-                padded = np.r_[s_arr, -np.inf]
-                peak[pick] = np.maximum.reduceat(padded, bounds)[::2]
+        change_loc, peak = _alarm_extent(s_pos, s_neg, a_loc, a_groups, up, mg, n_groups)
         change_abs = sel[msel[change_loc]]
         alarm_abs = sel[msel[a_loc]]
         accepted = (g_end[a_groups] - change_abs) >= m
@@ -479,44 +453,135 @@ def detect_bias_steps(
         keep_rows = sel < cut[gs]
         kr = sel[keep_rows]
         pieces.append(
-            pd.DataFrame(
-                {
-                    "station_id": obs.station_ids[st[kr]].astype(str),
-                    "segment": segment_no[gs[keep_rows]],
-                    "event_id": obs.event_ids[ev[kr]].astype(str),
-                    "time": obs.event_time[ev[kr]],
-                    "z": z[kr],
-                    "x": x[keep_rows],
-                    "cusum_pos": cus_p[keep_rows],
-                    "cusum_neg": cus_n[keep_rows],
-                }
+            _path_piece(
+                obs, st, ev, z, kr, segment_no[gs[keep_rows]], x[keep_rows], cus_p, cus_n, keep_rows
             )
         )
-        for g, c, a, d, p in zip(
-            a_groups[accepted].tolist(),
-            change_abs[accepted].tolist(),
-            alarm_abs[accepted].tolist(),
-            np.where(up, 1, -1)[accepted].tolist(),
-            peak[accepted].tolist(),
-            strict=True,
-        ):
-            changes.append((g, c, a, d, p))
+        changes.extend(
+            zip(
+                a_groups[accepted].tolist(),
+                change_abs[accepted].tolist(),
+                alarm_abs[accepted].tolist(),
+                np.where(up, 1, -1)[accepted].tolist(),
+                peak[accepted].tolist(),
+                strict=True,
+            )
+        )
         alarmed_ok = np.zeros(n_groups, dtype=bool)
         alarmed_ok[a_groups[accepted]] = True
         seg_start[a_groups[accepted]] = change_abs[accepted]
         segment_no[a_groups[accepted]] += 1
         active &= alarmed_ok & (segment_no < int(max_steps))
     table = _step_table(obs, changes, st, ev, z, g_first, g_end)
-    paths = (
-        pd.concat(pieces, ignore_index=True)
-        if pieces
-        else pd.DataFrame({c: pd.Series(dtype=object) for c in PATH_COLUMNS})
-    )
-    if pieces:
-        paths = paths.sort_values(["station_id", "segment", "time"], kind="stable")
-        paths = paths.reset_index(drop=True)
+    paths = _joined_paths(pieces)
     return BiasStepResult(
         table=table, paths=paths, k=float(k), h=float(h), min_events=m, reference=reference
+    )
+
+
+def _standardised_increments(
+    zs: NDArray[np.float64],
+    gs: NDArray[np.int64],
+    pos: NDArray[np.int64],
+    literal: NDArray[np.bool_],
+    scale_rows: NDArray[np.float64],
+    *,
+    reference: str,
+    clip: float | None,
+) -> NDArray[np.float64]:
+    """CUSUM increments x of the rows of the open segments (module docstring).
+
+    z minus the running mean of the segment's earlier z, divided by sqrt(1 + 1/pos) so that
+    x ~ N(0, 1) under no step; with ``reference="model"`` the first segment uses z itself.
+    Scaled by the serial-correlation factor and clipped at ±``clip``.
+    """
+    s_first, s_seg = _segment_bounds(gs)
+    prev_sum = _grouped_cumsum(zs, s_seg, s_first) - zs
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = (zs - prev_sum / pos) / np.sqrt(1.0 + 1.0 / pos)
+    if reference == "model":
+        x = np.where(literal, zs, x)
+    x = x * scale_rows
+    if clip is not None:
+        x = np.clip(x, -clip, clip)
+    return np.asarray(x, dtype=np.float64)
+
+
+def _alarm_extent(
+    s_pos: NDArray[np.float64],
+    s_neg: NDArray[np.float64],
+    a_loc: NDArray[np.int64],
+    a_groups: NDArray[np.int64],
+    up: NDArray[np.bool_],
+    mg: NDArray[np.int64],
+    n_groups: int,
+) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
+    """Change point and peak of every first alarm (indices into the monitored rows).
+
+    The change is the row after the alarming sum last left zero (within the group's monitored
+    rows); the peak is the largest value of that sum from the alarm to the end of its
+    excursion (the next zero or the group's end); Page (1954) for the CUSUM.
+    """
+    m_first, _ = _segment_bounds(mg)
+    grp_mfirst = np.full(n_groups, -1, dtype=np.int64)
+    grp_mfirst[mg[m_first]] = m_first
+    grp_mend = np.full(n_groups, -1, dtype=np.int64)
+    grp_mend[mg[m_first]] = np.r_[m_first[1:], mg.shape[0]]
+    local = np.arange(mg.shape[0], dtype=np.int64)
+    big = np.int64(mg.shape[0])
+    change_loc = np.empty(a_loc.shape[0], dtype=np.int64)
+    end_loc = np.empty(a_loc.shape[0], dtype=np.int64)
+    for s_arr, pick in ((s_pos, up), (s_neg, ~up)):
+        zero = s_arr == 0.0
+        last_zero = np.maximum.accumulate(np.where(zero, local, -1))
+        next_zero = np.minimum.accumulate(np.where(zero, local, big)[::-1])[::-1]
+        al = a_loc[pick]
+        ag = a_groups[pick]
+        change_loc[pick] = np.maximum(last_zero[al], grp_mfirst[ag] - 1) + 1
+        end_loc[pick] = np.minimum(next_zero[al], grp_mend[ag])
+    # Peak of the alarming sum over [alarm, end of its excursion).
+    peak = np.empty(a_loc.shape[0])
+    for s_arr, pick in ((s_pos, up), (s_neg, ~up)):
+        if np.any(pick):
+            bounds = np.c_[a_loc[pick], end_loc[pick]].ravel()
+            padded = np.r_[s_arr, -np.inf]
+            peak[pick] = np.maximum.reduceat(padded, bounds)[::2]
+    return change_loc, peak
+
+
+def _joined_paths(pieces: list[pd.DataFrame]) -> pd.DataFrame:
+    """The paths of all rounds, by station, segment and time (empty with its columns)."""
+    if not pieces:
+        return pd.DataFrame({c: pd.Series(dtype=object) for c in PATH_COLUMNS})
+    paths = pd.concat(pieces, ignore_index=True)
+    paths = paths.sort_values(["station_id", "segment", "time"], kind="stable")
+    return paths.reset_index(drop=True)
+
+
+def _path_piece(
+    obs: ObservationSet,
+    st: NDArray[np.int64],
+    ev: NDArray[np.int64],
+    z: NDArray[np.float64],
+    kr: NDArray[np.int64],
+    segment: NDArray[np.int64],
+    x: NDArray[np.float64],
+    cus_p: NDArray[np.float64],
+    cus_n: NDArray[np.float64],
+    keep_rows: NDArray[np.bool_],
+) -> pd.DataFrame:
+    """The CUSUM paths of one round (rows ``kr``), columns :data:`PATH_COLUMNS`."""
+    return pd.DataFrame(
+        {
+            "station_id": obs.station_ids[st[kr]].astype(str),
+            "segment": segment,
+            "event_id": obs.event_ids[ev[kr]].astype(str),
+            "time": obs.event_time[ev[kr]],
+            "z": z[kr],
+            "x": x,
+            "cusum_pos": cus_p[keep_rows],
+            "cusum_neg": cus_n[keep_rows],
+        }
     )
 
 

@@ -28,6 +28,7 @@ from numpy.typing import NDArray
 
 from fusion.model.eb_priors import EBPrior
 from fusion.model.parameters import StationParameters
+from fusion.observations import index_of
 
 __all__ = [
     "TimeWeights",
@@ -170,12 +171,12 @@ def match_previous_units(
     K, Kp = ids.shape[0], previous.n_units
     prev_ids = previous.unit_ids.astype(str)
     prev_st = previous.station_ids.astype(str)
-    out = _lookup(prev_ids, ids)
+    out = index_of(prev_ids, ids)
     # Fallback: the station's latest previous epoch.
     start = previous.epoch_start.astype("datetime64[us]").astype(np.int64)
     order = np.lexsort((start, prev_st))
     last = order[np.r_[prev_st[order][1:] != prev_st[order][:-1], True]] if Kp else order
-    spos = _lookup(prev_st[last], stations)
+    spos = index_of(prev_st[last], stations)
     miss = (out < 0) & (spos >= 0)
     out[miss] = last[spos[miss]]
     if row_unit is None or row_time is None or Kp == 0 or K * Kp > 50_000_000:
@@ -251,14 +252,3 @@ def warm_start(
     sigma2[hit] = previous.sigma2[match[hit]]
     prior = EBPrior(d0=d0, s0_2=float(previous.s0_2), tau_b2=float(previous.tau_b2))
     return WarmStart(bias=bias, sigma2=sigma2, prior=prior)
-
-
-def _lookup(table: NDArray[Any], keys: NDArray[Any]) -> NDArray[np.int64]:
-    """Index of each key in ``table`` (unique strings), -1 when absent; vectorized."""
-    if table.shape[0] == 0:
-        return np.full(keys.shape[0], -1, dtype=np.int64)
-    sorter = np.argsort(table)
-    pos = np.searchsorted(table, keys, sorter=sorter)
-    pos = np.clip(pos, 0, table.shape[0] - 1)
-    idx = sorter[pos]
-    return np.where(table[idx] == keys, idx, -1).astype(np.int64)

@@ -770,7 +770,6 @@ def detect_correlated_pairs(
         func,
         outlier_weight=float(outlier_weight),
     )
-    index = prep.index
     partners: PairCovariance | None = None
     previous: frozenset[tuple[int, int]] | None = frozenset()
     converged = False
@@ -779,69 +778,21 @@ def detect_correlated_pairs(
     covariance = PairCovariance.empty(K)
     for _ in range(int(max_rounds)):
         n_rounds += 1
-        ps = _leave_two_out(
-            index,
-            prep.event,
-            prep.station,
-            prep.y,
-            prep.s2_row,
+        found = _test_round(
+            obs,
+            prep,
             s2,
-            prep.gamma,
-            obs.n_events,
             partners,
-            prep.member,
+            min_shared=min_shared,
+            fdr_q=fdr_q,
+            fdr_method=fdr_method,
+            shrink_n0=float(shrink_n0),
         )
-        tested = ps.n >= min_shared
-        idx = np.flatnonzero(tested)
-        if idx.shape[0] == 0:
+        if found is None:
             converged = True
             break
-        k, l = index.pair_k[idx], index.pair_l[idx]
-        sk2, sl2 = s2[k], s2[l]
-        t = ps.t_self[idx]
-        p = 2.0 * special.ndtr(-np.abs(t))
-        p = np.where(np.isfinite(p), p, 1.0)
-        fdr = fdr_control(p, fdr_q, method=fdr_method)
-        # ĉ/(σ_k σ_l) can leave [-1, 1] by sampling error (or with a small σ̂); a correlation
-        # is reported inside it. ``c_hat`` keeps the unclipped estimate.
-        rho = np.clip(ps.c_hat[idx] / np.sqrt(sk2 * sl2), -1.0, 1.0)
-        positive = fdr.reject & (rho > 0.0)
-        chosen = _greedy_partners(positive, p, t, k, l, K)
-        rho_null, lo, hi = _rho_interval(ps.c_hat[idx], ps.v_bar[idx], sk2, sl2, ps.n_eff[idx])
-        status = np.full(idx.shape[0], PairStatus.NOT_SIGNIFICANT.value, dtype=object)
-        status[fdr.reject & ~positive] = PairStatus.NEGATIVE.value
-        status[positive & ~chosen] = PairStatus.PAIRED_ELSEWHERE.value
-        status[chosen] = PairStatus.FLAGGED.value
-        table = pd.DataFrame(
-            {
-                "station_k": obs.station_ids[k].astype(str),
-                "station_l": obs.station_ids[l].astype(str),
-                "k": k,
-                "l": l,
-                "n_shared": ps.n[idx],
-                "n_effective": ps.n_eff[idx],
-                "c_hat": ps.c_hat[idx],
-                "rho_hat": rho,
-                "rho_ci_low": lo,
-                "rho_ci_high": hi,
-                "rho_null": rho_null,
-                "r_raw": ps.r_raw[idx],
-                "statistic": t,
-                "statistic_model": ps.t_model[idx],
-                "p_value": p,
-                "q_value": fdr.q_value,
-                "rejected": fdr.reject,
-                "flagged": chosen,
-                "status": status,
-            }
-        )
-        table = table.sort_values(["p_value", "station_k", "station_l"], kind="stable")
-        table = table.reset_index(drop=True)
-        c = _shrunk_capped(
-            ps.c_hat[idx][chosen], ps.n_eff[idx][chosen], sk2[chosen], sl2[chosen], float(shrink_n0)
-        )
-        covariance = PairCovariance(k[chosen], l[chosen], c, K)
-        current = frozenset(zip(k[chosen].tolist(), l[chosen].tolist(), strict=True))
+        table, covariance = found
+        current = frozenset(zip(covariance.k.tolist(), covariance.l.tolist(), strict=True))
         if current == previous:
             converged = True
             break
@@ -850,7 +801,84 @@ def detect_correlated_pairs(
     return PairDetection(table=table, covariance=covariance, n_rounds=n_rounds, converged=converged)
 
 
-# -- global parametric bootstrap (docs/pairs.md §8) ------------------------------------------------
+def _test_round(
+    obs: ObservationSet,
+    prep: _Prepared,
+    s2: NDArray[np.float64],
+    partners: PairCovariance | None,
+    *,
+    min_shared: int,
+    fdr_q: float,
+    fdr_method: str,
+    shrink_n0: float,
+) -> tuple[pd.DataFrame, PairCovariance] | None:
+    """One pass: leave-two-out statistics with the current partners excluded, FDR control,
+    the partner rule and the shrunk covariances; None when no pair has ``min_shared`` events."""
+    K = obs.n_stations
+    index = prep.index
+    ps = _leave_two_out(
+        index,
+        prep.event,
+        prep.station,
+        prep.y,
+        prep.s2_row,
+        s2,
+        prep.gamma,
+        obs.n_events,
+        partners,
+        prep.member,
+    )
+    idx = np.flatnonzero(ps.n >= min_shared)
+    if idx.shape[0] == 0:
+        return None
+    k, l = index.pair_k[idx], index.pair_l[idx]
+    sk2, sl2 = s2[k], s2[l]
+    t = ps.t_self[idx]
+    p = 2.0 * special.ndtr(-np.abs(t))
+    p = np.where(np.isfinite(p), p, 1.0)
+    fdr = fdr_control(p, fdr_q, method=fdr_method)
+    # ĉ/(σ_k σ_l) can leave [-1, 1] by sampling error (or with a small σ̂); a correlation
+    # is reported inside it. ``c_hat`` keeps the unclipped estimate.
+    rho = np.clip(ps.c_hat[idx] / np.sqrt(sk2 * sl2), -1.0, 1.0)
+    positive = fdr.reject & (rho > 0.0)
+    chosen = _greedy_partners(positive, p, t, k, l, K)
+    rho_null, lo, hi = _rho_interval(ps.c_hat[idx], ps.v_bar[idx], sk2, sl2, ps.n_eff[idx])
+    status = np.full(idx.shape[0], PairStatus.NOT_SIGNIFICANT.value, dtype=object)
+    status[fdr.reject & ~positive] = PairStatus.NEGATIVE.value
+    status[positive & ~chosen] = PairStatus.PAIRED_ELSEWHERE.value
+    status[chosen] = PairStatus.FLAGGED.value
+    table = pd.DataFrame(
+        {
+            "station_k": obs.station_ids[k].astype(str),
+            "station_l": obs.station_ids[l].astype(str),
+            "k": k,
+            "l": l,
+            "n_shared": ps.n[idx],
+            "n_effective": ps.n_eff[idx],
+            "c_hat": ps.c_hat[idx],
+            "rho_hat": rho,
+            "rho_ci_low": lo,
+            "rho_ci_high": hi,
+            "rho_null": rho_null,
+            "r_raw": ps.r_raw[idx],
+            "statistic": t,
+            "statistic_model": ps.t_model[idx],
+            "p_value": p,
+            "q_value": fdr.q_value,
+            "rejected": fdr.reject,
+            "flagged": chosen,
+            "status": status,
+        }
+    )
+    table = table.sort_values(["p_value", "station_k", "station_l"], kind="stable")
+    table = table.reset_index(drop=True)
+    c = _shrunk_capped(
+        ps.c_hat[idx][chosen], ps.n_eff[idx][chosen], sk2[chosen], sl2[chosen], shrink_n0
+    )
+    return table, PairCovariance(k[chosen], l[chosen], c, K)
+
+
+# -- global parametric bootstrap (docs/pairs.md §8) ----------------------------------------------
 
 
 def _global_statistic(

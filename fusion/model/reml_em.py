@@ -86,7 +86,6 @@ quadratic programming problems arising in optimization. SIAM J. Sci. Comput. 23:
 from __future__ import annotations
 
 import dataclasses
-import functools
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -94,7 +93,7 @@ from typing import Any, Literal
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import integrate, linalg, sparse, stats
+from scipy import linalg, sparse
 
 from fusion.model.anchors import (
     Anchor,
@@ -112,7 +111,21 @@ from fusion.model.eb_priors import (
     EBPrior,
     initial_error_variance,
     prior_stable,
-    refreshed_prior,
+)
+from fusion.model.fit_steps import (
+    ConvergenceTracker,
+    Extrapolation,
+    StationFitResult,
+    anchor_level,
+    check_iteration_parameters,
+    effective_dof,
+    moderated_variance,
+    parameter_error,
+    raw_variance,
+    refresh_due,
+    refresh_prior,
+    student_t_weight,
+    t_weight_consistency,
 )
 from fusion.model.forgetting import WarmStart, match_previous_units, unit_station_ids, warm_start
 from fusion.model.parameters import StationParameters
@@ -120,7 +133,7 @@ from fusion.network.gls_blocks import PairCovariance, pair_partner_rows
 from fusion.observations import ObservationSet
 from stations.errors import ConfigError, ConvergenceWarning, InsufficientDataError
 
-__all__ = ["RemlEmFit", "fit_reml_em", "t_weight_consistency"]
+__all__ = ["RemlEmFit", "fit_reml_em", "t_weight_consistency"]  # κ_ν: fusion.model.fit_steps
 
 Solver = Literal["auto", "direct", "pcg"]
 
@@ -141,32 +154,8 @@ _PRECONDITIONER_PAIRS = 25_000_000
 _PCG_REFRESH_ITER = 20
 
 
-@functools.lru_cache(maxsize=16)
-def t_weight_consistency(nu: float) -> float:
-    """κ_ν = E[ω(X) X²] for X ~ N(0, 1) and Student-t weights ω(x) = (ν + 1)/(ν + x²).
-
-    Dividing the robust-weighted squared residuals by κ_ν makes the σ-step consistent for
-    Gaussian errors (module docstring). κ_4 = 0.78631 (computed by quadrature).
-
-    Parameters
-    ----------
-    nu : float
-        Degrees of freedom ν > 0.
-
-    Returns
-    -------
-    float
-    """
-
-    def integrand(x: float) -> float:
-        return float((nu + 1.0) * x * x / (nu + x * x) * stats.norm.pdf(x))
-
-    value, _ = integrate.quad(integrand, -np.inf, np.inf)
-    return float(value)
-
-
 @dataclass(frozen=True, slots=True, eq=False)
-class RemlEmFit:
+class RemlEmFit(StationFitResult):
     """Result of :func:`fit_reml_em`.
 
     Per-station arrays have shape (K,) and follow ``station_ids`` (station units); per-event
@@ -249,16 +238,6 @@ class RemlEmFit:
     converged: bool
     solver: str
     gamma: NDArray[np.float64]
-
-    @property
-    def sigma(self) -> NDArray[np.float64]:
-        """σ̃_i, magnitude units."""
-        return np.sqrt(self.sigma2)
-
-    @property
-    def bias_se(self) -> NDArray[np.float64]:
-        """sqrt(Var b̂_i), magnitude units."""
-        return np.sqrt(self.bias_var)
 
 
 # ------------------------------------------------------------------------------------------
@@ -832,8 +811,7 @@ def _robust_weights(
             np.copyto(u2, r * r / np.take(sigma2, d.st), where=hard)
             notok = np.where(hard, d.nonrobust_row, notok)
     del s2
-    u2 += nu
-    omega = np.divide(nu + 1.0, u2, out=u2)
+    omega = student_t_weight(u2, nu, out=u2, overwrite_u2=True)
     np.copyto(omega, 1.0, where=notok)
     if literal:
         return omega, omega
@@ -859,14 +837,6 @@ def _sigma_sums(
     else:
         v = np.asarray(d.ones_T @ (d.g_ev * V), dtype=np.float64)
     return _SigmaSums(q=q, v=v)
-
-
-def _sigma_step(d: _Design, sums: _SigmaSums, prior: EBPrior) -> NDArray[np.float64]:
-    """σ_i² = (d0 s0² + Σγ(q + V_j))/(d0 + Σγ) (docs/estimator.md §3 step 4, module docstring)."""
-    if np.isinf(prior.d0):
-        return np.full(d.n_st, prior.s0_2)
-    sigma2 = (prior.d0 * prior.s0_2 + sums.q + sums.v) / (prior.d0 + d.g_count)
-    return np.maximum(sigma2, 1e-12 * prior.s0_2)
 
 
 def _pair_step(
@@ -903,94 +873,7 @@ def _diag_data_information(d: _Design, w: _Weights, nm: _Normal) -> NDArray[np.f
 
 def _dof(d: _Design, nm: _Normal) -> NDArray[np.float64]:
     """d_i = Σ_j γ_j (1 − w_ij) = Σγ − Σ_j γ_j a_ij/(P_j + π_j) (= X'g)."""
-    return np.asarray(d.g_count - d.XT @ nm.g, dtype=np.float64)
-
-
-def _refresh_prior(
-    d: _Design,
-    b: NDArray[np.float64],
-    nm: _Normal,
-    w: _Weights,
-    sums: _SigmaSums,
-    prior: EBPrior,
-    mu0: float,
-) -> EBPrior:
-    """Empirical-Bayes refresh of (d0, s0², τ_b²) of this iteration (docs/estimator.md §5)."""
-    dof = _dof(d, nm)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        s2 = sums.q / dof
-    info = _diag_data_information(d, w, nm)
-    with np.errstate(divide="ignore"):
-        var = np.where(info > 0, 1.0 / info, np.inf)
-    return refreshed_prior(s2, dof, b, var, d.g_count, prior, mu0)
-
-
-class ConvergenceTracker:
-    """Distance of the iterate to the EM fixed point, for b and log σ (module docstring).
-
-    EM converges linearly, Δ_{k+1} ≈ ρ Δ_k, so the remaining distance is about Δ_k ρ/(1 − ρ)
-    (Aitken's argument; Dempster, Laird & Rubin 1977 for the linear rate [from memory]). ρ is
-    the largest of the last five observed step ratios below 1, taken only between consecutive
-    regular EM steps (not across an extrapolation or a change of the priors, where the ratio
-    says nothing about the rate), capped at 0.99; with ρ <= 1/2 the test is the plain step test
-    of docs/estimator.md §7.2.
-    """
-
-    def __init__(self) -> None:
-        self.last: tuple[float, float] | None = None
-        self.ratios: list[list[float]] = [[], []]
-
-    def break_chain(self) -> None:
-        """The next step does not follow the last one by a plain EM step."""
-        self.last = None
-
-    def add(self, db: float, dls: float) -> None:
-        if self.last is not None:
-            for col, (prev, cur) in enumerate(zip(self.last, (db, dls), strict=True)):
-                if prev > 0 and cur < prev:
-                    self.ratios[col] = [*self.ratios[col][-4:], cur / prev]
-        self.last = (db, dls)
-
-    @property
-    def rate(self) -> float:
-        """Observed rate of the σ iteration (last ratio), 0 when unknown."""
-        return self.ratios[1][-1] if self.ratios[1] else 0.0
-
-    @property
-    def max_rate(self) -> float:
-        """The last observed step ratio of b or log σ (the larger), 0 when unknown."""
-        return max(self.ratios[0][-1:] + self.ratios[1][-1:], default=0.0)
-
-    def distance(self) -> tuple[float, float]:
-        if self.last is None:
-            return np.inf, np.inf
-        out = []
-        for col in (0, 1):
-            step = self.last[col]
-            rho = min(max(self.ratios[col]), 0.99) if self.ratios[col] else 0.99
-            out.append(step * max(rho / (1.0 - rho), 1.0))
-        return out[0], out[1]
-
-
-def squarem_step(
-    t0: NDArray[np.float64], t1: NDArray[np.float64], t2: NDArray[np.float64], max_alpha: float
-) -> NDArray[np.float64] | None:
-    """One SQUAREM extrapolation from three consecutive EM iterates (Varadhan & Roland 2008).
-
-    r = t1 − t0, v = t2 − 2t1 + t0, α = −‖r‖/‖v‖ (their scheme S3) clipped to [−max_alpha, −1],
-    t' = t0 − 2αr + α²v. α = −1 gives t2 (no extrapolation); the next EM step from t' is the
-    stabilising step of the scheme.
-    """
-    r = t1 - t0
-    v = t2 - 2.0 * t1 + t0
-    nv = float(np.linalg.norm(v))
-    if nv == 0.0:
-        return None
-    alpha = -float(np.linalg.norm(r)) / nv
-    alpha = min(-1.0, max(alpha, -max_alpha))
-    if alpha == -1.0:
-        return None
-    return np.asarray(t0 - 2.0 * alpha * r + alpha * alpha * v, dtype=np.float64)
+    return effective_dof(d.g_count, np.asarray(d.XT @ nm.g, dtype=np.float64))
 
 
 def _ridge(prior: EBPrior) -> float:
@@ -1005,21 +888,11 @@ def _ridge(prior: EBPrior) -> float:
 def _check_params(
     nu: float, max_iter: int, tol_bias: float, tol_log_sigma: float, solver: str
 ) -> None:
-    def bad(name: str, rule: str, value: object) -> ConfigError:
-        return ConfigError(
-            f"The {name!r} parameter of fit_reml_em must be {rule}. Got {value!r} instead."
-        )
-
-    if not (nu > 0 and np.isfinite(nu)):
-        raise bad("nu", "a float in the range (0, inf)", nu)
-    if not (isinstance(max_iter, int | np.integer) and max_iter >= 1):
-        raise bad("max_iter", "an int in the range [1, inf)", max_iter)
-    if not tol_bias > 0:
-        raise bad("tol_bias", "a float in the range (0, inf)", tol_bias)
-    if not tol_log_sigma > 0:
-        raise bad("tol_log_sigma", "a float in the range (0, inf)", tol_log_sigma)
+    check_iteration_parameters(
+        "fit_reml_em", nu=nu, max_iter=max_iter, tol_bias=tol_bias, tol_log_sigma=tol_log_sigma
+    )
     if solver not in ("auto", "direct", "pcg"):
-        raise bad("solver", "one of 'auto', 'direct', 'pcg'", solver)
+        raise parameter_error("fit_reml_em", "solver", "one of 'auto', 'direct', 'pcg'", solver)
 
 
 def fit_reml_em(
@@ -1122,19 +995,152 @@ def fit_reml_em(
     channels) are treated as two independent readings.
     """
     _check_params(nu, max_iter, tol_bias, tol_log_sigma, solver)
-    K, N = obs.n_stations, obs.n_events
+    N = obs.n_events
     g_all = np.ones(N) if gamma is None else np.asarray(gamma, dtype=np.float64)
     if g_all.shape != (N,) or not np.all(np.isfinite(g_all) & (g_all >= 0)):
         raise ConfigError(f"gamma must hold {N} finite weights >= 0, one per event")
     unit_ids = np.asarray(obs.station_ids).astype(str)
     u_station = unit_station_ids(unit_ids) if unit_station is None else np.asarray(unit_station)
+    s = _setup(obs, anchor, g_all, pairs, unit_ids, u_station)
+    st = _starting_values(s, obs, init, prior, pairs, unit_ids, u_station)
+    d = s.d
+    opt = _Options(
+        nu=float(nu),
+        robust=robust,
+        kappa=t_weight_consistency(float(nu)) if (robust and scale_consistency) else 1.0,
+        literal=robust and not scale_consistency,
+        use_direct=solver == "direct"
+        or (solver == "auto" and d.sum_n2 <= _DIRECT_MAX_PAIRS and d.n_st <= _DIRECT_MAX_UNITS),
+        max_iter=max_iter,
+        tol_bias=tol_bias,
+        tol_log_sigma=tol_log_sigma,
+        eb_every=eb_every,
+        shrink_n0=shrink_n0,
+        accelerate=accelerate,
+    )
+    _iterate(s, st, opt)
+    if not st.converged:
+        warnings.warn(
+            f"fit_reml_em stopped at max_iter={max_iter} before max|Δb| < {tol_bias} and "
+            f"max|Δ log σ| < {tol_log_sigma}; raise max_iter or loosen the tolerances",
+            ConvergenceWarning,
+            stacklevel=2,
+        )
+    final = _final_estimates(s, st, opt, dense_cov_max)
+    return _scatter_result(
+        obs, s, st, opt, final, anchor, pairs, g_all, dense_cov_max, outlier_weight
+    )
 
+
+# ------------------------------------------------------------------------------------------
+# Steps of the fit
+# ------------------------------------------------------------------------------------------
+
+
+@dataclass(slots=True, eq=False)
+class _Setup:
+    """What stays fixed during the iterations: design, connectivity, level constraints.
+
+    ``constraints(w)`` gives the constraint columns C, targets B and the component of each
+    constraint for the current row weights (A4 adds one weight-dependent column per component).
+    """
+
+    d: _Design
+    conn: Connectivity
+    cons: LevelConstraints
+    cons_c: LevelConstraints  # restricted to the active units
+    comp: NDArray[np.int64]  # component of each active unit
+    sigma_identified: NDArray[np.bool_]
+    mu0: float
+    C_fixed: NDArray[np.float64]
+    B_fixed: NDArray[np.float64]
+    comp_of_c: NDArray[np.int64]
+    a4: bool
+    a4_comps: NDArray[np.int64]
+    ev_comp_fit: NDArray[np.int64]  # component of each fitted event
+    weight_sum_full: NDArray[np.float64]
+    match: Callable[[StationParameters], NDArray[np.int64]]
+
+    def constraints(
+        self, w: _Weights
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.int64]]:
+        """C, B and the constraint components for the row weights ``w``."""
+        if not self.a4:
+            return self.C_fixed, self.B_fixed, self.comp_of_c
+        return _append_mean_magnitude(
+            self.d,
+            w,
+            self.C_fixed,
+            self.B_fixed,
+            self.comp_of_c,
+            self.comp,
+            self.ev_comp_fit,
+            self.a4_comps,
+            self.cons.mean_magnitude,
+        )
+
+
+@dataclass(slots=True, eq=False)
+class _Options:
+    """Numerical options of one fit (validated by :func:`_check_params`)."""
+
+    nu: float
+    robust: bool
+    kappa: float
+    literal: bool
+    use_direct: bool
+    max_iter: int
+    tol_bias: float
+    tol_log_sigma: float
+    eb_every: int
+    shrink_n0: float
+    accelerate: bool
+
+
+@dataclass(slots=True, eq=False)
+class _State:
+    """The iterate (active units only) and the solver's reusable pieces."""
+
+    b: NDArray[np.float64]
+    sigma2: NDArray[np.float64]
+    prior: EBPrior
+    c_pair: NDArray[np.float64]
+    omega: NDArray[np.float64] | None = None
+    qfac: NDArray[np.float64] | None = None
+    minv: Callable[[NDArray[np.float64]], NDArray[np.float64]] | None = None
+    last_db: float = 1.0
+    n_iter: int = 0
+    converged: bool = False
+
+
+@dataclass(slots=True, eq=False)
+class _Step:
+    """The result of steps 1–4 of one iteration."""
+
+    b: NDArray[np.float64]
+    sigma2: NDArray[np.float64]
+    omega: NDArray[np.float64] | None
+    qfac: NDArray[np.float64] | None
+    c_pair: NDArray[np.float64]
+    w: _Weights
+    nm: _Normal
+    sums: _SigmaSums
+
+
+def _setup(
+    obs: ObservationSet,
+    anchor: Anchor,
+    g_all: NDArray[np.float64],
+    pairs: PairCovariance | None,
+    unit_ids: NDArray[Any],
+    u_station: NDArray[Any],
+) -> _Setup:
+    """Build the design, the connectivity report and the anchor's level constraints."""
+    K, N = obs.n_stations, obs.n_events
     # Reference events (A3) decide which one-station events are fitted.
     ref_mean, ref_prec = reference_event_priors(anchor, obs.event_ids)
     ref_prec = np.where(g_all > 0, ref_prec, 0.0)
     d = _build_design(obs, g_all, ref_mean, ref_prec, pairs)
-    Kp = d.n_st
-
     # Connectivity and level constraints (station codes of obs).
     ev_rows = d.events[d.ev]
     st_rows = d.stations[d.st]
@@ -1170,30 +1176,43 @@ def fit_reml_em(
         previous_match=match(anchor.previous) if anchor.previous is not None else None,
     )
     conn = _with_anchors(conn, cons.component_anchored)
-    comp = conn.component[d.stations]  # component of each active unit
-    sigma_identified = conn.sigma_identifiable[d.stations]
-    mu0 = cons.prior_mean
+    comp = conn.component[d.stations]
     cons_c = _compress(cons, d.stations)
-    C_fixed = _constraint_matrix(cons_c.weight, cons_c.group, cons_c.n_constraints)
-    B_fixed = cons_c.target
     comp_of_c = np.full(cons_c.n_constraints, -1, dtype=np.int64)
     comp_of_c[cons_c.group[cons_c.group >= 0]] = comp[cons_c.group >= 0]
     a4 = anchor.kind is AnchorKind.MEAN_MAGNITUDE
-    a4_comps = np.flatnonzero(cons.component_anchored) if a4 else np.zeros(0, dtype=np.int64)
-    ev_comp_fit = event_comp[d.events]
+    return _Setup(
+        d=d,
+        conn=conn,
+        cons=cons,
+        cons_c=cons_c,
+        comp=comp,
+        sigma_identified=conn.sigma_identifiable[d.stations],
+        mu0=cons.prior_mean,
+        C_fixed=_constraint_matrix(cons_c.weight, cons_c.group, cons_c.n_constraints),
+        B_fixed=cons_c.target,
+        comp_of_c=comp_of_c,
+        a4=a4,
+        a4_comps=np.flatnonzero(cons.component_anchored) if a4 else np.zeros(0, dtype=np.int64),
+        ev_comp_fit=event_comp[d.events],
+        weight_sum_full=weight_sum_full,
+        match=match,
+    )
 
-    def constraints(
-        w: _Weights,
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.int64]]:
-        if not a4:
-            return C_fixed, B_fixed, comp_of_c
-        return _append_mean_magnitude(
-            d, w, C_fixed, B_fixed, comp_of_c, comp, ev_comp_fit, a4_comps, cons.mean_magnitude
-        )
 
-    # Starting values.
+def _starting_values(
+    s: _Setup,
+    obs: ObservationSet,
+    init: WarmStart | StationParameters | None,
+    prior: EBPrior | None,
+    pairs: PairCovariance | None,
+    unit_ids: NDArray[Any],
+    u_station: NDArray[Any],
+) -> _State:
+    """Start from ``init`` (a previous model matched by unit) or from μ0 and s0² (module doc)."""
+    d, K = s.d, obs.n_stations
     if isinstance(init, StationParameters):
-        init = warm_start(init, unit_ids, unit_station=u_station, match=match(init))
+        init = warm_start(init, unit_ids, unit_station=u_station, match=s.match(init))
     if init is not None and (init.bias.shape != (K,) or init.sigma2.shape != (K,)):
         raise ConfigError(f"init must hold {K} biases and variances, one per station unit")
     if prior is None:
@@ -1202,219 +1221,287 @@ def fit_reml_em(
         else:
             s0 = initial_error_variance(d.ev, d.m, d.n_ev)
             prior = EBPrior(d0=DEFAULT_D0, s0_2=s0, tau_b2=DEFAULT_TAU_B2)
-    b = np.full(Kp, mu0)
-    sigma2 = np.full(Kp, prior.s0_2)
+    b = np.full(d.n_st, s.mu0)
+    sigma2 = np.full(d.n_st, prior.s0_2)
     if init is not None:
         ib, is2 = init.bias[d.stations], init.sigma2[d.stations]
         b = np.where(np.isfinite(ib), ib, b)
         sigma2 = np.where(np.isfinite(is2) & (is2 > 0), is2, sigma2)
-    omega: NDArray[np.float64] | None = None
-    omega_new: NDArray[np.float64] | None = None
-    qfac: NDArray[np.float64] | None = None
     c_pair = np.asarray(pairs.c, dtype=np.float64)[d.pair_src] if pairs is not None else np.zeros(0)
-    kappa = t_weight_consistency(float(nu)) if (robust and scale_consistency) else 1.0
-    literal = robust and not scale_consistency
-    use_direct = solver == "direct" or (
-        solver == "auto" and d.sum_n2 <= _DIRECT_MAX_PAIRS and Kp <= _DIRECT_MAX_UNITS
-    )
-    minv: Callable[[NDArray[np.float64]], NDArray[np.float64]] | None = None
+    return _State(b=b, sigma2=sigma2, prior=prior, c_pair=c_pair)
 
-    converged = False
-    n_iter = 0
-    eb_on = eb_every > 0
-    last_db = 1.0
-    cg_iterations: list[int] = []
+
+def _b_step(
+    s: _Setup,
+    st: _State,
+    opt: _Options,
+    w: _Weights,
+    nm: _Normal,
+) -> NDArray[np.float64]:
+    """Step 1: the constrained normal equations, direct or by projected PCG (module doc)."""
+    d = s.d
+    C, B, comp_c = s.constraints(w)
+    if opt.use_direct:
+        b_new, _ = _solve_direct(_dense_normal(d, w, nm), nm.rhs, C, B, want_cov=False)
+    else:
+        if st.minv is None:
+            st.minv = _preconditioner_inverse(d, w, nm, budget=_PRECONDITIONER_PAIRS)
+        precond = _ConstrainedPreconditioner(st.minv, C)
+        x0 = _make_feasible(st.b, C, B, s.comp, comp_c)
+        # Inexact ECM: early b-steps need not be solved beyond 1 % of the last change.
+        step_tol = max(1e-3 * opt.tol_bias, 1e-2 * st.last_db)
+        b_new, cg_it = _solve_pcg(d, nm, x0, precond, step_tol=step_tol)
+        if cg_it > _PCG_REFRESH_ITER:
+            st.minv = None
+    if s.cons.median:
+        b_new = recentre_median(b_new, s.cons_c, s.comp)
+    return b_new
+
+
+def _em_step(s: _Setup, st: _State, opt: _Options, it: int) -> _Step:
+    """Steps 1–4 of iteration ``it``: b-step, E-step, robust weights, σ-step and pairs."""
+    d = s.d
+    w = _row_weights(d, st.sigma2, st.omega, st.c_pair)
+    nm = _normal_pieces(d, w, _ridge(st.prior), s.mu0)
+    b_new = _b_step(s, st, opt, w, nm)
+    # 2. E-step
+    num = nm.am - np.asarray(d.X @ b_new)
+    M, V, Pf = _event_estimate(d, w.P, num)
+    y = d.m - b_new[d.st]
+    r = y - M[d.ev]
+    # 3. robust weights
+    omega, qfac = st.omega, st.qfac
+    if opt.robust:
+        start = None
+        if it == 0:
+            start = y - _weighted_event_median(d, y)[d.ev]
+        omega, qfac = _robust_weights(
+            d, w, r, Pf, V, st.sigma2, opt.nu, opt.kappa, opt.literal, median_start=start
+        )
+        del start
+    del y
+    # 4. σ-step (and flagged-pair covariances)
+    sums = _sigma_sums(d, r, V, qfac, omega if opt.literal else None)
+    sigma2 = moderated_variance(st.prior, (sums.q, sums.v), d.g_count)
+    c_pair = st.c_pair
+    if d.pair_k.shape[0]:
+        c_pair = _pair_step(d, r, V, sigma2, c_pair, opt.shrink_n0)
+    return _Step(
+        b=b_new, sigma2=sigma2, omega=omega, qfac=qfac, c_pair=c_pair, w=w, nm=nm, sums=sums
+    )
+
+
+def _iterate(s: _Setup, st: _State, opt: _Options) -> None:
+    """Iterate to convergence (module docstring): EM steps, EB refreshes, SQUAREM jumps."""
     tracker = ConvergenceTracker()
-    theta: list[NDArray[np.float64]] = []
-    max_alpha = 50.0
-    post_jump: float | None = None
-    for it in range(max_iter):
-        n_iter = it + 1
-        w = _row_weights(d, sigma2, omega, c_pair)
-        nm = _normal_pieces(d, w, _ridge(prior), mu0)
-        C, B, comp_c = constraints(w)
-        # 1. b-step
-        if use_direct:
-            b_new, _ = _solve_direct(_dense_normal(d, w, nm), nm.rhs, C, B, want_cov=False)
-        else:
-            if minv is None:
-                minv = _preconditioner_inverse(d, w, nm, budget=_PRECONDITIONER_PAIRS)
-            precond = _ConstrainedPreconditioner(minv, C)
-            x0 = _make_feasible(b, C, B, comp, comp_c)
-            # Inexact ECM: early b-steps need not be solved beyond 1 % of the last change.
-            step_tol = max(1e-3 * tol_bias, 1e-2 * last_db)
-            b_new, cg_it = _solve_pcg(d, nm, x0, precond, step_tol=step_tol)
-            cg_iterations.append(cg_it)
-            if cg_it > _PCG_REFRESH_ITER:
-                minv = None
-        if cons.median:
-            b_new = recentre_median(b_new, cons_c, comp)
-        # 2. E-step
-        num = nm.am - np.asarray(d.X @ b_new)
-        M, V, Pf = _event_estimate(d, w.P, num)
-        y = d.m - b_new[d.st]
-        r = y - M[d.ev]
-        # 3. robust weights
-        if robust:
-            start = None
-            if it == 0:
-                start = y - _weighted_event_median(d, y)[d.ev]
-            omega_new, qfac = _robust_weights(
-                d, w, r, Pf, V, sigma2, float(nu), kappa, literal, median_start=start
-            )
-            del start
-        del y
-        # 4. σ-step (and flagged-pair covariances)
-        sums = _sigma_sums(d, r, V, qfac, omega_new if literal else None)
-        sigma2_new = _sigma_step(d, sums, prior)
-        if d.pair_k.shape[0]:
-            c_pair = _pair_step(d, r, V, sigma2_new, c_pair, shrink_n0)
-        db = float(np.max(np.abs(b_new - b)))
-        last_db = db
-        dlog = np.abs(0.5 * np.log(sigma2_new / sigma2))
+    extrapolation = Extrapolation(tracker, enabled=opt.accelerate)
+    eb_on = opt.eb_every > 0
+    for it in range(opt.max_iter):
+        st.n_iter = it + 1
+        step = _em_step(s, st, opt, it)
+        db = float(np.max(np.abs(step.b - st.b)))
+        st.last_db = db
+        dlog = np.abs(0.5 * np.log(step.sigma2 / st.sigma2))
         dls = float(np.max(dlog))
-        # σ of a station in a bipartite component is not identified (docs/model.md §3): only the
+        # σ of a station in a bipartite component is not identified (docs/model.md): only the
         # prior fixes the split and EM crawls along it, so the rate correction uses the
         # identified σ only and the others get the plain step test.
-        dls_id = float(np.max(dlog, where=sigma_identified, initial=0.0))
+        dls_id = float(np.max(dlog, where=s.sigma_identified, initial=0.0))
         tracker.add(db, dls_id)
-        b, sigma2, omega = b_new, sigma2_new, omega_new
-        # 5. empirical-Bayes refresh
-        refresh_due = eb_on and (it == 1 or (it + 1) % eb_every == 0)
-        err_b, err_s = tracker.distance()
-        done = it >= 2 and err_b < tol_bias and err_s < tol_log_sigma and dls < tol_log_sigma
-        if refresh_due or (done and eb_on):
-            new_prior = _refresh_prior(d, b, nm, w, sums, prior, mu0)
-            stable = prior_stable(prior, new_prior, tol_log_sigma)
-            if it == 1 and not stable:
-                minv = None  # the first refresh moves s0² and τ_b² far from their start
-            if not stable:
-                theta.clear()  # the map changed: do not extrapolate across it
-                tracker.break_chain()
-            prior = new_prior
-            if done and not stable:
-                continue
-        if done:
-            converged = True
-            break
-        # 6. SQUAREM-type extrapolation of log σ² when EM crawls (module docstring).
-        if post_jump is not None and dls > 2.0 * post_jump:
-            max_alpha = max(1.0, 0.5 * max_alpha)  # the jump overshot: be more careful
-        post_jump = None
-        theta.append(np.log(sigma2))
-        if accelerate and len(theta) >= 3 and tracker.rate > 0.6:
-            jumped = squarem_step(theta[-3], theta[-2], theta[-1], max_alpha)
-            if jumped is not None:
-                log_s0 = np.log(prior.s0_2)
-                sigma2 = np.exp(np.clip(jumped, log_s0 - 12.0, log_s0 + 12.0))
-                post_jump = dls
-                theta.clear()
-                tracker.break_chain()
-    if not converged:
-        warnings.warn(
-            f"fit_reml_em stopped at max_iter={max_iter} before max|Δb| < {tol_bias} and "
-            f"max|Δ log σ| < {tol_log_sigma}; raise max_iter or loosen the tolerances",
-            ConvergenceWarning,
-            stacklevel=2,
+        st.b, st.sigma2, st.omega, st.qfac, st.c_pair = (
+            step.b,
+            step.sigma2,
+            step.omega,
+            step.qfac,
+            step.c_pair,
         )
+        # 5. empirical-Bayes refresh
+        err_b, err_s = tracker.distance()
+        done = (
+            it >= 2
+            and err_b < opt.tol_bias
+            and err_s < opt.tol_log_sigma
+            and dls < opt.tol_log_sigma
+        )
+        if refresh_due(it, opt.eb_every) or (done and eb_on):
+            stable = _refresh_step(s, st, step, opt, it)
+            if not stable:
+                extrapolation.reset()  # the map changed: do not extrapolate across it
+                if done:
+                    continue
+        if done:
+            st.converged = True
+            return
+        # 6. SQUAREM-type extrapolation of log σ² when EM crawls (module docstring).
+        jumped = extrapolation.after_step(dls, np.log(st.sigma2), tracker.rate)
+        if jumped is not None:
+            log_s0 = np.log(st.prior.s0_2)
+            st.sigma2 = np.exp(np.clip(jumped, log_s0 - 12.0, log_s0 + 12.0))
 
-    # Final quantities with the final parameters.
-    w = _row_weights(d, sigma2, omega, c_pair)
-    nm = _normal_pieces(d, w, _ridge(prior), mu0)
-    num = nm.am - np.asarray(d.X @ b)
+
+def _refresh_step(s: _Setup, st: _State, step: _Step, opt: _Options, it: int) -> bool:
+    """Step 5: refresh the EB priors; True when they are stable (shared :mod:`fit_steps`)."""
+    d = s.d
+    new_prior = refresh_prior(
+        step.sums.q,
+        _dof(d, step.nm),
+        _diag_data_information(d, step.w, step.nm),
+        st.b,
+        d.g_count,
+        st.prior,
+        s.mu0,
+    )
+    stable = prior_stable(st.prior, new_prior, opt.tol_log_sigma)
+    if it == 1 and not stable:
+        st.minv = None  # the first refresh moves s0² and τ_b² far from their start
+    st.prior = new_prior
+    return stable
+
+
+@dataclass(slots=True, eq=False)
+class _Final:
+    """Quantities at the final parameters (active units and fitted events)."""
+
+    b: NDArray[np.float64]
+    M: NDArray[np.float64]
+    V: NDArray[np.float64]
+    w: _Weights
+    residual: NDArray[np.float64]
+    gls_weight: NDArray[np.float64]
+    dof: NDArray[np.float64]
+    raw_s2: NDArray[np.float64]
+    var: NDArray[np.float64]
+    cov: NDArray[np.float64] | None
+
+
+def _final_estimates(s: _Setup, st: _State, opt: _Options, dense_cov_max: int) -> _Final:
+    """Event estimates, residuals, d_i, raw s_i² and Cov(b̂) with the final parameters."""
+    d = s.d
+    w = _row_weights(d, st.sigma2, st.omega, st.c_pair)
+    nm = _normal_pieces(d, w, _ridge(st.prior), s.mu0)
+    num = nm.am - np.asarray(d.X @ st.b)
     M, V, Pf = _event_estimate(d, w.P, num)
-    if a4:
-        # The A4 constraint held for the last b-step's weights; restore it exactly for the final
-        # ones by the one-constant shift per component that any anchor makes (docs/model.md §3).
-        n_c = int(comp.max()) + 1
-        ok = ev_comp_fit >= 0
-        g_sum = np.bincount(ev_comp_fit[ok], weights=d.g_ev[ok], minlength=n_c)
-        level = np.bincount(ev_comp_fit[ok], weights=(d.g_ev * M)[ok], minlength=n_c)
-        shift = np.zeros(n_c)
-        has = g_sum > 0
-        shift[has] = level[has] / g_sum[has] - cons.mean_magnitude
-        b = b + shift[comp]
-        M = M - np.where(ok, shift[np.maximum(ev_comp_fit, 0)], 0.0)
+    b = st.b
+    if s.a4:
+        b, M = _restore_mean_magnitude(s, b, M)
     r = d.m - b[d.st] - M[d.ev]
     gls_w = d.a / Pf[d.ev]
     dof = _dof(d, nm)
-    sums = _sigma_sums(d, r, V, qfac, omega if literal else None)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        raw_s2 = np.where(dof > 0, sums.q / dof, np.nan)
+    sums = _sigma_sums(d, r, V, st.qfac, st.omega if opt.literal else None)
+    raw_s2 = raw_variance(sums.q, dof)
     cov_act: NDArray[np.float64] | None = None
-    if dense_cov_max >= Kp:
-        C, B, _ = constraints(w)
+    if dense_cov_max >= d.n_st:
+        C, B, _ = s.constraints(w)
         _, cov_act = _solve_direct(_dense_normal(d, w, nm), nm.rhs, C, B, want_cov=True)
         assert cov_act is not None
         var_act = np.diag(cov_act).copy()
     else:
         var_act = 1.0 / (_diag_data_information(d, w, nm) + nm.ridge)
-    omega_rows = np.ones(d.m.shape[0]) if omega is None else omega
+    return _Final(
+        b=b,
+        M=M,
+        V=V,
+        w=w,
+        residual=r,
+        gls_weight=gls_w,
+        dof=dof,
+        raw_s2=raw_s2,
+        var=var_act,
+        cov=cov_act,
+    )
 
-    # Scatter to the full unit table.
-    bias = np.full(K, mu0)
-    bias[d.stations] = b
-    bias_var = np.full(K, prior.tau_b2)
-    bias_var[d.stations] = np.maximum(var_act, 0.0)
+
+def _restore_mean_magnitude(
+    s: _Setup, b: NDArray[np.float64], M: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Restore the A4 constraint for the final weights by one shift per component.
+
+    The A4 constraint held for the last b-step's weights; any anchor allows the one-constant
+    shift per component that makes it hold exactly for the final ones (docs/model.md).
+    """
+    d, comp, ev_comp_fit = s.d, s.comp, s.ev_comp_fit
+    n_c = int(comp.max()) + 1
+    ok = ev_comp_fit >= 0
+    g_sum = np.bincount(ev_comp_fit[ok], weights=d.g_ev[ok], minlength=n_c)
+    level = np.bincount(ev_comp_fit[ok], weights=(d.g_ev * M)[ok], minlength=n_c)
+    shift = np.zeros(n_c)
+    has = g_sum > 0
+    shift[has] = level[has] / g_sum[has] - s.cons.mean_magnitude
+    return b + shift[comp], M - np.where(ok, shift[np.maximum(ev_comp_fit, 0)], 0.0)
+
+
+def _scatter_result(
+    obs: ObservationSet,
+    s: _Setup,
+    st: _State,
+    opt: _Options,
+    f: _Final,
+    anchor: Anchor,
+    pairs: PairCovariance | None,
+    g_all: NDArray[np.float64],
+    dense_cov_max: int,
+    outlier_weight: float,
+) -> RemlEmFit:
+    """Scatter the active units and fitted events to the full unit, event and row tables."""
+    d, K, N = s.d, obs.n_stations, obs.n_events
+    prior = st.prior
+    omega_rows = np.ones(d.m.shape[0]) if st.omega is None else st.omega
+    bias = _scatter(K, d.stations, f.b, s.mu0)
+    bias_var = _scatter(K, d.stations, np.maximum(f.var, 0.0), prior.tau_b2)
     bias_cov: NDArray[np.float64] | None = None
-    if cov_act is not None and dense_cov_max >= K:
+    if f.cov is not None and dense_cov_max >= K:
         bias_cov = np.diag(bias_var)
-        bias_cov[np.ix_(d.stations, d.stations)] = cov_act
-    sig = np.full(K, prior.s0_2)
-    sig[d.stations] = sigma2
-    raw = np.full(K, np.nan)
-    raw[d.stations] = raw_s2
-    dof_full = np.zeros(K)
-    dof_full[d.stations] = dof
+        bias_cov[np.ix_(d.stations, d.stations)] = f.cov
+    dof_full = _scatter(K, d.stations, f.dof, 0.0)
     n_rows = np.zeros(K, dtype=np.int64)
-    n_rows[d.stations] = np.bincount(d.st, minlength=Kp)
-    n_out = np.zeros(K)
-    n_out[d.stations] = d.per_station((omega_rows < outlier_weight).astype(np.float64))
+    n_rows[d.stations] = np.bincount(d.st, minlength=d.n_st)
+    n_out = _scatter(
+        K, d.stations, d.per_station((omega_rows < outlier_weight).astype(np.float64)), 0.0
+    )
     with np.errstate(invalid="ignore", divide="ignore"):
         outlier_rate = np.where(n_rows > 0, n_out / np.maximum(n_rows, 1), np.nan)
-    ev_mag = np.full(N, np.nan)
-    ev_var = np.full(N, np.nan)
-    ev_mag[d.events] = M
-    ev_var[d.events] = V
     used = np.zeros(N, dtype=bool)
     used[d.events] = True
-    row_w = np.full(obs.n_obs, np.nan)
-    row_w[d.rows] = omega_rows
-    row_gw = np.full(obs.n_obs, np.nan)
-    row_gw[d.rows] = gls_w
-    resid = np.full(obs.n_obs, np.nan)
-    resid[d.rows] = r
     out_pairs: PairCovariance | None = pairs
     if d.pair_k.shape[0]:
-        out_pairs = PairCovariance(d.stations[d.pair_k], d.stations[d.pair_l], c_pair, K)
+        out_pairs = PairCovariance(d.stations[d.pair_k], d.stations[d.pair_l], st.c_pair, K)
     return RemlEmFit(
         station_ids=obs.station_ids,
         bias=bias,
         bias_var=bias_var,
         bias_cov=bias_cov,
-        sigma2=sig,
-        raw_s2=raw,
+        sigma2=_scatter(K, d.stations, st.sigma2, prior.s0_2),
+        raw_s2=_scatter(K, d.stations, f.raw_s2, np.nan),
         dof=dof_full,
         n_events=n_rows,
-        weight_sum=weight_sum_full,
+        weight_sum=s.weight_sum_full,
         outlier_rate=outlier_rate,
         prior_dominated=dof_full < prior.d0,
-        uncalibrated=conn.uncalibrated,
-        event_magnitude=ev_mag,
-        event_variance=ev_var,
+        uncalibrated=s.conn.uncalibrated,
+        event_magnitude=_scatter(N, d.events, f.M, np.nan),
+        event_variance=_scatter(N, d.events, f.V, np.nan),
         event_used=used,
-        row_weight=row_w,
-        row_gls_weight=row_gw,
-        residual=resid,
+        row_weight=_scatter(obs.n_obs, d.rows, omega_rows, np.nan),
+        row_gls_weight=_scatter(obs.n_obs, d.rows, f.gls_weight, np.nan),
+        residual=_scatter(obs.n_obs, d.rows, f.residual, np.nan),
         prior=prior,
         pairs=out_pairs,
-        anchor=_anchor_result(anchor, cons, bias, prior, d, w.P, V),
-        connectivity=conn,
-        n_iter=n_iter,
-        converged=converged,
-        solver="direct" if use_direct else "pcg",
+        anchor=_anchor_result(anchor, s.cons, bias, prior, d, f.w.P, f.V),
+        connectivity=s.conn,
+        n_iter=st.n_iter,
+        converged=st.converged,
+        solver="direct" if opt.use_direct else "pcg",
         gamma=g_all,
     )
+
+
+def _scatter(
+    size: int, index: NDArray[np.int64], values: NDArray[np.float64], fill: float
+) -> NDArray[np.float64]:
+    """An array of ``size`` filled with ``fill`` and ``values`` at ``index``."""
+    out = np.full(size, fill)
+    out[index] = values
+    return out
 
 
 # ------------------------------------------------------------------------------------------
@@ -1487,10 +1574,7 @@ def _anchor_result(
     n_ref = int(in_ref.sum())
     kind = anchor.kind
     tau = float(np.sqrt(prior.tau_b2))
-    if kind is AnchorKind.MEDIAN:
-        value = float(np.median(bias[in_ref])) if n_ref else float(cons.prior_mean)
-    else:
-        value = float(np.dot(ref_w, bias)) if n_ref else float(cons.prior_mean)
+    value = anchor_level(kind, ref_w, bias, float(cons.prior_mean))
     nan = float("nan")
     if kind is AnchorKind.REFERENCE_SET:
         se = tau * float(np.sqrt(np.sum(ref_w**2))) if n_ref else nan

@@ -18,9 +18,9 @@ type:
    :func:`fusion.model.pair_tests.global_independence_test`), whose refits use a fast Gaussian
    closure warm-started at the final parameters;
 6. with ``use_nondetections``, the non-detections (docs/censoring.md §4,
-   :func:`fusion.model.censored_fit.refit_with_nondetections`): the joint censored fit warm-started
-   from step 4's fit when thresholds are stored (or estimated), else optionally the safe-cell
-   fallback. The hand-over then carries the censored estimates.
+   :func:`fusion.model.nondetection_modes.refit_with_nondetections`): the joint censored fit
+   warm-started from step 4's fit when thresholds are stored (or estimated), else optionally
+   the safe-cell fallback. The hand-over then carries the censored estimates.
 
 The result is handed on as :attr:`StationModel.parameters_`
 (:class:`fusion.model.parameters.StationParameters`); tables describe stations, pairs and epochs.
@@ -47,11 +47,11 @@ from fusion.model.anchors import (
     ReferenceEvents,
     read_reference_events,
 )
-from fusion.model.censored_fit import NondetectionOutcome, refit_with_nondetections
 from fusion.model.eb_priors import EBPrior
 from fusion.model.epochs import STEP_COLUMNS, detect_bias_steps, split_epochs
 from fusion.model.estimator_base import ParamsMixin
 from fusion.model.forgetting import WarmStart, time_weights, unit_station_ids
+from fusion.model.nondetection_modes import NondetectionOutcome, refit_with_nondetections
 from fusion.model.pair_tests import (
     TABLE_COLUMNS,
     GlobalTestResult,

@@ -69,7 +69,7 @@ import pandas as pd
 from numpy.typing import ArrayLike, NDArray
 
 from fusion.network.censoring import inverse_mills_ratio
-from fusion.observations import ObservationSet
+from fusion.observations import ObservationSet, index_of
 from stations.errors import ConfigError, SchemaError
 
 if TYPE_CHECKING:
@@ -197,7 +197,7 @@ class DetectionCurves:
         # Latest unit per station: within a station, ids sort by the start date after '@'.
         order = np.lexsort((have, base))
         last = order[np.r_[base[order][1:] != base[order][:-1], True]]
-        pos = _index(base[last], np.char.partition(want, "@")[:, 0] if want.size else want)
+        pos = index_of(base[last], np.char.partition(want, "@")[:, 0] if want.size else want)
         src = np.where(pos >= 0, last[np.maximum(pos, 0)], -1)
         ok = src >= 0
         s = np.maximum(src, 0)
@@ -749,10 +749,10 @@ def flag_detection_bias(
     unit = co["unit_id"].astype(object).to_numpy()[rows]
     station = np.asarray(obs.station_ids).astype(str)[obs.station[rows]]
     key = np.where(pd.isna(unit), station, unit).astype(str)
-    lookup = _index(curve_ids, key)
-    fallback = _index(curve_ids, station)
+    lookup = index_of(curve_ids, key)
+    fallback = index_of(curve_ids, station)
     code = np.where(lookup >= 0, lookup, fallback)
-    par_idx = _index(np.asarray(params.unit_ids).astype(str), key)
+    par_idx = index_of(np.asarray(params.unit_ids).astype(str), key)
     has = (code >= 0) & (par_idx >= 0)
     t = np.full(rows.shape[0], np.nan)
     t[has] = curves.threshold(code[has], obs.distance_km[rows][has])
@@ -773,13 +773,3 @@ def flag_detection_bias(
     )
     events = ev_tab.assign(expected_detection_bias=size, flags=new_flags.astype(object))
     return FusedMagnitudes(events=events, contributions=co)
-
-
-def _index(table: NDArray[Any], keys: NDArray[Any]) -> NDArray[np.int64]:
-    """Index of each key in ``table`` (unique strings), -1 when absent; vectorized."""
-    if table.shape[0] == 0:
-        return np.full(keys.shape[0], -1, dtype=np.int64)
-    sorter = np.argsort(table)
-    pos = np.clip(np.searchsorted(table, keys, sorter=sorter), 0, table.shape[0] - 1)
-    idx = sorter[pos]
-    return np.where(table[idx] == keys, idx, -1).astype(np.int64)

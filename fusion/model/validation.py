@@ -374,7 +374,27 @@ def held_out_prediction(
         }
     )
     crit = float(special.ndtri(0.5 + level / 2.0))
-    # Pooled MSE and paired bootstrap over events.
+    pooled, J = _pooled_comparison(ev, err, s2_row, level, int(replicates), random_state)
+    per_station = _per_station_errors(obs, st, err, z, crit)
+    return HeldOutResult(
+        rows=rows,
+        pooled=pooled,
+        per_station=per_station,
+        n_events=int(J),
+        replicates=int(replicates),
+        level=float(level),
+    )
+
+
+def _pooled_comparison(
+    ev: NDArray[np.int64],
+    err: dict[HeldOutMethod, NDArray[np.float64]],
+    s2_row: NDArray[np.float64],
+    level: float,
+    replicates: int,
+    random_state: int | np.random.Generator | None,
+) -> tuple[pd.DataFrame, int]:
+    """Pooled MSE of every method and its difference to GLS with a paired event bootstrap."""
     ev_codes, ev_local = np.unique(ev, return_inverse=True)
     J = ev_codes.shape[0]
     n_ev = np.bincount(ev_local, minlength=J).astype(np.float64)
@@ -387,17 +407,7 @@ def held_out_prediction(
     lo = np.full(len(_METHODS), np.nan)
     hi = np.full(len(_METHODS), np.nan)
     if replicates > 0:
-        rng = np.random.default_rng(random_state)
-        boot = np.empty((int(replicates), len(_METHODS)))
-        chunk = max(1, int(2_000_000 // max(J, 1)))
-        for s0 in range(0, int(replicates), chunk):
-            B = min(chunk, int(replicates) - s0)
-            draw = rng.integers(0, J, size=(B, J))
-            counts = np.bincount(
-                (draw + (np.arange(B) * J)[:, None]).ravel(), minlength=B * J
-            ).reshape(B, J)
-            boot[s0 : s0 + B] = (counts @ sq) / (counts @ n_ev)[:, None]
-        d_boot = boot - boot[:, :1]
+        d_boot = _bootstrap_mse_differences(sq, n_ev, replicates, random_state)
         diff_se = d_boot.std(axis=0, ddof=1) if replicates > 1 else np.zeros(len(_METHODS))
         lo = np.quantile(d_boot, 0.5 - level / 2.0, axis=0)
         hi = np.quantile(d_boot, 0.5 + level / 2.0, axis=0)
@@ -413,13 +423,48 @@ def held_out_prediction(
             "diff_ci_high": hi,
         }
     )
-    # Per station.
+    return pooled, int(J)
+
+
+def _bootstrap_mse_differences(
+    sq: NDArray[Any],
+    n_ev: NDArray[np.float64],
+    replicates: int,
+    random_state: int | np.random.Generator | None,
+) -> NDArray[np.float64]:
+    """Bootstrap replicates (events drawn with replacement) of MSE(method) − MSE(GLS).
+
+    ``sq`` holds each event's sum of squared errors per method (J × methods), ``n_ev`` its
+    readings; the draws are counted in chunks of about two million cells.
+    """
+    J = sq.shape[0]
+    rng = np.random.default_rng(random_state)
+    boot = np.empty((replicates, len(_METHODS)))
+    chunk = max(1, int(2_000_000 // max(J, 1)))
+    for s0 in range(0, replicates, chunk):
+        B = min(chunk, replicates - s0)
+        draw = rng.integers(0, J, size=(B, J))
+        counts = np.bincount((draw + (np.arange(B) * J)[:, None]).ravel(), minlength=B * J).reshape(
+            B, J
+        )
+        boot[s0 : s0 + B] = (counts @ sq) / (counts @ n_ev)[:, None]
+    return np.asarray(boot - boot[:, :1], dtype=np.float64)
+
+
+def _per_station_errors(
+    obs: ObservationSet,
+    st: NDArray[np.int64],
+    err: dict[HeldOutMethod, NDArray[np.float64]],
+    z: NDArray[np.float64],
+    crit: float,
+) -> pd.DataFrame:
+    """Per station: MSE of every method, mean and SD of z, and the coverage |z| <= crit."""
     st_codes, st_local = np.unique(st, return_inverse=True)
     n_st = np.bincount(st_local).astype(np.float64)
     z_mean = np.bincount(st_local, weights=z) / n_st
     with np.errstate(invalid="ignore", divide="ignore"):
         z_var = (np.bincount(st_local, weights=z * z) - n_st * z_mean**2) / (n_st - 1.0)
-    per_station = pd.DataFrame(
+    return pd.DataFrame(
         {
             "station_id": obs.station_ids[st_codes].astype(str),
             "n_obs": n_st.astype(np.int64),
@@ -431,14 +476,6 @@ def held_out_prediction(
             "z_sd": np.sqrt(np.maximum(z_var, 0.0)),
             "coverage": np.bincount(st_local, weights=np.abs(z) <= crit) / n_st,
         }
-    )
-    return HeldOutResult(
-        rows=rows,
-        pooled=pooled,
-        per_station=per_station,
-        n_events=int(J),
-        replicates=int(replicates),
-        level=float(level),
     )
 
 

@@ -83,9 +83,10 @@ import pandas as pd
 from numpy.typing import NDArray
 from scipy import special
 
+from fusion.model.fit_steps import student_t_weight
 from fusion.model.parameters import StationParameters
 from fusion.network.censoring import CensoredEventData, fit_censored, row_sensitivities
-from fusion.network.event_gls import event_gls
+from fusion.network.event_gls import EventGLS, event_gls
 from fusion.network.gls_blocks import PairCovariance, pair_partner_rows, precision_row_weights
 from fusion.observations import ObservationSet
 from stations.errors import (
@@ -550,7 +551,7 @@ def _group_argmax(
 
 def _student_t_weight(u: NDArray[np.float64], nu: float) -> NDArray[np.float64]:
     """min(1, (ν + 1)/(ν + u²)); 1 where u is NaN (nothing to compare with)."""
-    w = np.minimum(1.0, (nu + 1.0) / (nu + u * u))
+    w = student_t_weight(u * u, nu, cap_at_one=True)
     return np.where(np.isnan(u), 1.0, w)
 
 
@@ -685,9 +686,7 @@ def _loo_t_weights(
     np.sqrt(p_loo, out=p_loo)
     m_loo /= p_loo
     np.multiply(m_loo, m_loo, out=m_loo)
-    m_loo += nu
-    np.divide(nu + 1.0, m_loo, out=omega)
-    np.minimum(omega, 1.0, out=omega)
+    student_t_weight(m_loo, nu, cap_at_one=True, out=omega, overwrite_u2=True)
     return np.asarray(M, dtype=np.float64), omega
 
 
@@ -912,10 +911,144 @@ def fuse_events(
             f"the station parameters are for {params.magnitude_type}, the observations are "
             f"{obs.magnitude_type}; fit or load a model for {obs.magnitude_type}"
         )
-    n_events, n_units = obs.n_events, params.n_units
-    event = obs.event
+    rp = _row_parameters(obs, params)
+    rs = _row_states(obs, params, rp, nan_policy)
+    est = _gls_estimate(
+        rs,
+        obs.n_events,
+        robust_min_stations=robust_min_stations,
+        nu=nu,
+        inconsistent_z=inconsistent_z,
+        robust_max_iter=robust_max_iter,
+        robust_tol=robust_tol,
+    )
+    diag = _event_diagnostics(obs, rp, rs, est, outlier_weight)
+    cen = _censored_step(
+        obs,
+        rp,
+        rs,
+        est,
+        use_nondetections=use_nondetections,
+        soft_threshold_sd=soft_threshold_sd,
+        min_detection_probability=min_detection_probability,
+        censoring_max_iter=censoring_max_iter,
+    )
+    propagate_bad = np.zeros(obs.n_events, dtype=bool)
+    if nan_policy == "propagate":
+        propagate_bad[obs.event[rs.invalid]] = True
+        cen.magnitude[propagate_bad] = np.nan
+        cen.se[propagate_bad] = np.nan
+        cen.method[propagate_bad] = EstimateMethod.none.value
+    flags = _flags(obs, rp, rs, est, diag, cen, propagate_bad)
+    _warn_events(obs, flags.no_detection, cen.not_converged & (rs.counts > 0))
+    events = _event_table(
+        obs, rs, est, diag, cen, flags, confidence_level=confidence_level, gr_b_value=gr_b_value
+    )
+    contributions = _contribution_table(obs, params, rp, rs, est, cen, flags)
+    return FusedMagnitudes(events=events, contributions=contributions)
 
-    # -- station parameters per row -------------------------------------------------------
+
+# ------------------------------------------------------------------------------------------
+# Steps of fuse_events
+# ------------------------------------------------------------------------------------------
+
+
+@dataclass(slots=True, eq=False)
+class _RowParameters:
+    """Station parameters looked up for every row (unknown units: b = 0, τ_b², s0²)."""
+
+    unit: NDArray[np.int64]  # unit index of the row, -1 when unknown
+    known: NDArray[np.bool_]
+    bias: NDArray[np.float64]
+    bias_var: NDArray[np.float64]
+    sigma2: NDArray[np.float64]
+    prior_row: NDArray[np.bool_]  # unknown or prior-dominated unit
+
+
+@dataclass(slots=True, eq=False)
+class _RowStates:
+    """Which rows enter the GLS, and those rows' values (``rows`` index the observation set)."""
+
+    det: NDArray[np.bool_]
+    finite: NDArray[np.bool_]
+    invalid: NDArray[np.bool_]  # detected with a non-finite magnitude
+    clipped: NDArray[np.bool_]
+    rows: NDArray[np.int64]
+    ev: NDArray[np.int64]
+    code: NDArray[np.int64]  # unit code of the GLS rows (n_units for unknown)
+    y: NDArray[np.float64]  # corrected magnitude m − b̂
+    sig2_u: NDArray[np.float64]
+    bvar_u: NDArray[np.float64]
+    base: NDArray[np.float64]  # σ̃² + Var b̂
+    counts: NDArray[np.int64]
+    starts: NDArray[np.int64]
+    pairs: PairCovariance | None
+    partner: NDArray[np.int64] | None
+
+
+@dataclass(slots=True, eq=False)
+class _GlsEstimate:
+    """Robust weights, the final GLS and the leave-one-out z of the GLS rows."""
+
+    robust_event: NDArray[np.bool_]
+    rob: _RobustResult
+    s2: NDArray[np.float64]
+    gls: EventGLS
+    se: NDArray[np.float64]
+    z: NDArray[np.float64]
+    z_two: NDArray[np.float64]
+    inconsistent: NDArray[np.bool_]
+
+
+@dataclass(slots=True, eq=False)
+class _Diagnostics:
+    """Per-event diagnostics of the GLS (module docstring)."""
+
+    chi2: NDArray[Any]  # float
+    birge: NDArray[np.float64]
+    n_eff: NDArray[np.float64]
+    prior_share: NDArray[Any]  # float
+    max_infl: NDArray[np.float64]
+    infl_row: NDArray[np.int64]
+    max_abs_z: NDArray[np.float64]
+    jack: NDArray[np.float64]
+    plain_mean: NDArray[np.float64]
+    median: NDArray[np.float64]
+    neg_w: NDArray[np.bool_]
+    outlier_row: NDArray[np.bool_]
+
+
+@dataclass(slots=True, eq=False)
+class _Censored:
+    """Magnitudes after the optional censored re-estimate, and its bookkeeping."""
+
+    magnitude: NDArray[np.float64]
+    se: NDArray[np.float64]
+    weight_row: NDArray[np.float64]
+    method: NDArray[Any]
+    n_iter: NDArray[np.int64]
+    converged: NDArray[np.bool_]
+    not_converged: NDArray[np.bool_]
+    shift: NDArray[np.float64]
+    n_cens_used: NDArray[np.int64]
+    used_nd_row: NDArray[np.bool_]
+    uncorrected: NDArray[np.bool_]
+
+
+@dataclass(slots=True, eq=False)
+class _Flags:
+    """Event and row flags as text categories and codes."""
+
+    no_detection: NDArray[np.bool_]
+    event_text: list[str]
+    event_codes: NDArray[Any]
+    row_text: list[str]
+    row_codes: NDArray[Any]
+
+
+def _row_parameters(obs: ObservationSet, params: StationParameters) -> _RowParameters:
+    """b̂, Var b̂ and σ̃² of every row's unit; an unknown unit gets 0, τ_b² and s0²."""
+    n_units = params.n_units
     unit = _row_units(obs, params)
     known = unit >= 0
     _check_parameters(params)
@@ -935,10 +1068,17 @@ def fuse_events(
             f"station parameters have tau_b2 = {params.tau_b2}, s0_2 = {params.s0_2}; "
             "unknown stations need tau_b2 >= 0 and s0_2 > 0: refit the station model"
         )
+    return _RowParameters(
+        unit=unit, known=known, bias=bias, bias_var=bias_var, sigma2=sigma2, prior_row=prior_row
+    )
 
-    # -- row states -------------------------------------------------------------------------
-    mag = obs.magnitude
-    det = obs.detected
+
+def _row_states(
+    obs: ObservationSet, params: StationParameters, rp: _RowParameters, nan_policy: NanPolicy
+) -> _RowStates:
+    """Select the GLS rows (detected, finite, not clipped) and apply ``nan_policy='raise'``."""
+    n_units = params.n_units
+    event, mag, det = obs.event, obs.magnitude, obs.detected
     finite = np.isfinite(mag)
     invalid = det & ~finite
     if nan_policy == "raise" and np.any(invalid):
@@ -952,25 +1092,50 @@ def fuse_events(
     use = det & finite & ~obs.clipped
     rows = np.flatnonzero(use)
     ev = event[rows]
-    code = np.where(known, unit, n_units)[rows]
-    y = mag[rows] - bias[rows]
-    sig2_u, bvar_u = sigma2[rows], bias_var[rows]
-    base = sig2_u + bvar_u
-    counts, starts = _group_starts(ev, n_events)
-
+    code = np.where(rp.known, rp.unit, n_units)[rows]
+    sig2_u, bvar_u = rp.sigma2[rows], rp.bias_var[rows]
+    counts, starts = _group_starts(ev, obs.n_events)
     pairs: PairCovariance | None = None
     if params.pairs.n_pairs:
         pairs = PairCovariance(params.pairs.k, params.pairs.l, params.pairs.c, n_units + 1)
-    partner = _partner_rows(ev, code, pairs)
+    return _RowStates(
+        det=det,
+        finite=finite,
+        invalid=invalid,
+        clipped=clipped,
+        rows=rows,
+        ev=ev,
+        code=code,
+        y=mag[rows] - rp.bias[rows],
+        sig2_u=sig2_u,
+        bvar_u=bvar_u,
+        base=sig2_u + bvar_u,
+        counts=counts,
+        starts=starts,
+        pairs=pairs,
+        partner=_partner_rows(ev, code, pairs),
+    )
 
-    # -- robust weights and the final GLS -------------------------------------------------
-    robust_event = counts >= max(3, int(robust_min_stations))
+
+def _gls_estimate(
+    rs: _RowStates,
+    n_events: int,
+    *,
+    robust_min_stations: int,
+    nu: float,
+    inconsistent_z: float,
+    robust_max_iter: int,
+    robust_tol: float,
+) -> _GlsEstimate:
+    """Robust weights, the final GLS, LOSO z and the two-station rule (module docstring)."""
+    ev, code, y, partner, pairs = rs.ev, rs.code, rs.y, rs.partner, rs.pairs
+    robust_event = rs.counts >= max(3, int(robust_min_stations))
     rob = _robust_weights(
         ev,
         code,
         y,
-        sig2_u,
-        bvar_u,
+        rs.sig2_u,
+        rs.bvar_u,
         partner,
         pairs,
         robust_event,
@@ -978,203 +1143,278 @@ def fuse_events(
         max_iter=int(robust_max_iter),
         tol=float(robust_tol),
     )
-    omega = rob.omega
-    s2 = sig2_u / omega + bvar_u
+    s2 = rs.sig2_u / rob.omega + rs.bvar_u
     gls = event_gls(
         ev, code, y, s2, n_events, pairs if partner is not None else None, partner_row=partner
     )
-    M_gls = gls.magnitude
     se = np.sqrt(gls.variance)
-    w = gls.weight
-    z = (y - gls.loo_magnitude) / np.sqrt(base + gls.loo_variance)
-
+    z = (y - gls.loo_magnitude) / np.sqrt(rs.base + gls.loo_variance)
     # Two stations: z of the difference (also for a flagged pair, whose LOSO is empty).
-    two = np.flatnonzero(counts == 2)
+    two = np.flatnonzero(rs.counts == 2)
     z_two = np.full(n_events, np.nan)
     if two.shape[0]:
-        a, b = starts[two], starts[two] + 1
+        a, b = rs.starts[two], rs.starts[two] + 1
         c12 = np.zeros(two.shape[0])
         if partner is not None and pairs is not None:
             paired = partner[a] == b
             c12[paired] = pairs.partner_cov[code[a[paired]]]
-        zd = (y[a] - y[b]) / np.sqrt(base[a] + base[b] - 2.0 * c12)
+        zd = (y[a] - y[b]) / np.sqrt(rs.base[a] + rs.base[b] - 2.0 * c12)
         z[a], z[b] = zd, -zd
         z_two[two] = zd
     inconsistent = np.abs(z_two) > inconsistent_z
     se = np.where(inconsistent, se * np.abs(z_two), se)
+    return _GlsEstimate(
+        robust_event=robust_event,
+        rob=rob,
+        s2=s2,
+        gls=gls,
+        se=se,
+        z=z,
+        z_two=z_two,
+        inconsistent=inconsistent,
+    )
 
-    # -- per-event diagnostics ------------------------------------------------------------
+
+def _event_diagnostics(
+    obs: ObservationSet,
+    rp: _RowParameters,
+    rs: _RowStates,
+    est: _GlsEstimate,
+    outlier_weight: float,
+) -> _Diagnostics:
+    """χ², Birge ratio, n_eff, prior share, influence, |z|, jackknife SE, mean and median."""
+    n_events = obs.n_events
+    ev, counts, starts, gls = rs.ev, rs.counts, rs.starts, est.gls
+    w = gls.weight
     r = gls.residual
     chi2 = np.bincount(
-        ev, weights=r * _sigma_inverse_residual(r, s2, code, partner, pairs), minlength=n_events
+        ev,
+        weights=r * _sigma_inverse_residual(r, est.s2, rs.code, rs.partner, rs.pairs),
+        minlength=n_events,
     )
     with np.errstate(invalid="ignore", divide="ignore"):
         birge = np.where(counts >= 2, np.sqrt(chi2 / (counts - 1)), np.nan)
         n_eff = 1.0 / np.bincount(ev, weights=w * w, minlength=n_events)
     chi2 = np.where(counts >= 2, chi2, np.nan)
     n_eff[counts == 0] = np.nan
-    prior_share = np.bincount(ev, weights=w * prior_row[rows], minlength=n_events)
+    prior_share = np.bincount(ev, weights=w * rp.prior_row[rs.rows], minlength=n_events)
     prior_share[counts == 0] = np.nan
     max_infl, infl_row = _group_argmax(ev, np.abs(gls.influence), counts, starts)
-    max_abs_z, _ = _group_argmax(ev, np.abs(z), counts, starts)
+    max_abs_z, _ = _group_argmax(ev, np.abs(est.z), counts, starts)
     loo = gls.loo_magnitude
+    mag_rows = obs.magnitude[rs.rows]
     with np.errstate(invalid="ignore", divide="ignore"):
         loo_mean = np.bincount(ev, weights=np.nan_to_num(loo), minlength=n_events) / counts
         jack_ss = np.bincount(
             ev, weights=np.nan_to_num((loo - loo_mean[ev]) ** 2), minlength=n_events
         )
         jack = np.where(counts >= 4, np.sqrt((counts - 1) / counts * jack_ss), np.nan)
-        plain_mean = np.bincount(ev, weights=mag[rows], minlength=n_events) / counts
-    median = _group_median(ev, mag[rows], counts, starts)
-    neg_w = np.bincount(ev, weights=w < 0.0, minlength=n_events) > 0
-    outlier_row = omega < outlier_weight
+        plain_mean = np.bincount(ev, weights=mag_rows, minlength=n_events) / counts
+    return _Diagnostics(
+        chi2=chi2,
+        birge=birge,
+        n_eff=n_eff,
+        prior_share=prior_share,
+        max_infl=max_infl,
+        infl_row=infl_row,
+        max_abs_z=max_abs_z,
+        jack=jack,
+        plain_mean=plain_mean,
+        median=_group_median(ev, mag_rows, counts, starts),
+        neg_w=np.bincount(ev, weights=w < 0.0, minlength=n_events) > 0,
+        outlier_row=est.rob.omega < outlier_weight,
+    )
 
-    # -- censored likelihood --------------------------------------------------------------
-    magnitude = M_gls.copy()
-    weight_row = np.zeros(obs.n_obs)
-    weight_row[rows] = w
+
+def _censored_step(
+    obs: ObservationSet,
+    rp: _RowParameters,
+    rs: _RowStates,
+    est: _GlsEstimate,
+    *,
+    use_nondetections: bool,
+    soft_threshold_sd: float,
+    min_detection_probability: float,
+    censoring_max_iter: int,
+) -> _Censored:
+    """Informative non-detections and clipped readings; with ``use_nondetections`` the
+    censored likelihood re-estimates their events (module docstring)."""
+    n_events, event = obs.n_events, obs.event
+    M_gls = est.gls.magnitude
+    w = est.gls.weight
     method = np.full(n_events, EstimateMethod.gls.value, dtype=object)
-    method[robust_event] = EstimateMethod.robust_gls.value
-    method[counts == 1] = EstimateMethod.single_station.value
-    method[counts == 0] = EstimateMethod.none.value
-    n_iter = rob.n_iter.copy()
-    converged = rob.converged.copy()
-    not_conv = ~rob.converged
-    shift = np.zeros(n_events)
-    n_cens_used = np.zeros(n_events, dtype=np.int64)
-    used_nd_row = np.zeros(obs.n_obs, dtype=bool)
+    method[est.robust_event] = EstimateMethod.robust_gls.value
+    method[rs.counts == 1] = EstimateMethod.single_station.value
+    method[rs.counts == 0] = EstimateMethod.none.value
+    weight_row = np.zeros(obs.n_obs)
+    weight_row[rs.rows] = w
+    out = _Censored(
+        magnitude=M_gls.copy(),
+        se=est.se,
+        weight_row=weight_row,
+        method=method,
+        n_iter=est.rob.n_iter.copy(),
+        converged=est.rob.converged.copy(),
+        not_converged=~est.rob.converged,
+        shift=np.zeros(n_events),
+        n_cens_used=np.zeros(n_events, dtype=np.int64),
+        used_nd_row=np.zeros(obs.n_obs, dtype=bool),
+        uncorrected=np.zeros(n_events, dtype=bool),
+    )
     has_estimate = np.isfinite(M_gls)
-    nd = ~det & np.isfinite(obs.threshold) & has_estimate[event]
-    scale_nd = np.sqrt(sigma2 + bias_var + float(soft_threshold_sd) ** 2)
+    nd = ~rs.det & np.isfinite(obs.threshold) & has_estimate[event]
+    scale_nd = np.sqrt(rp.sigma2 + rp.bias_var + float(soft_threshold_sd) ** 2)
     p_detect = np.zeros(obs.n_obs)
     nd_idx = np.flatnonzero(nd)
     p_detect[nd_idx] = special.ndtr(
-        (M_gls[event[nd_idx]] + bias[nd_idx] - obs.threshold[nd_idx]) / scale_nd[nd_idx]
+        (M_gls[event[nd_idx]] + rp.bias[nd_idx] - obs.threshold[nd_idx]) / scale_nd[nd_idx]
     )
     informative = nd & (p_detect > min_detection_probability)
-    clip_ok = clipped & has_estimate[event]
-    uncorrected = np.zeros(n_events, dtype=bool)
-    if use_nondetections:
-        cen_idx = np.flatnonzero(informative)
-        clip_idx = np.flatnonzero(clip_ok)
-        tob_ev = np.zeros(n_events, dtype=bool)
-        tob_ev[event[cen_idx]] = True
-        tob_ev[event[clip_idx]] = True
-        if np.any(tob_ev):
-            drow = np.flatnonzero(tob_ev[ev])
-            data = CensoredEventData(
-                n_events=n_events,
-                det_event=ev[drow],
-                det_value=y[drow],
-                det_precision=w[drow] * gls.precision[ev[drow]],
-                cen_event=event[cen_idx],
-                cen_value=obs.threshold[cen_idx] - bias[cen_idx],
-                cen_scale=scale_nd[cen_idx],
-                clip_event=event[clip_idx],
-                clip_value=mag[clip_idx] - bias[clip_idx],
-                clip_scale=np.sqrt(sigma2[clip_idx] + bias_var[clip_idx]),
-            )
-            fit = fit_censored(
-                data, np.where(tob_ev, M_gls, np.nan), max_iter=int(censoring_max_iter)
-            )
-            ok = tob_ev & fit.converged
-            failed = tob_ev & ~fit.converged
-            magnitude[ok] = fit.magnitude[ok]
-            se[ok] = np.where(inconsistent[ok], fit.se[ok] * np.abs(z_two[ok]), fit.se[ok])
-            shift[ok] = fit.magnitude[ok] - M_gls[ok]
-            method[ok] = EstimateMethod.censored_ml.value
-            n_iter[tob_ev] += fit.n_iter[tob_ev]
-            converged[failed] = False
-            not_conv |= failed
-            uncorrected |= failed
-            # Row weights ∂M̂/∂v (they sum to 1 over the event's rows).
-            w_det, w_cen, w_clip = row_sensitivities(data, np.where(ok, magnitude, 0.0))
-            weight_row[rows[drow]] = np.where(ok[ev[drow]], w_det, w[drow])
-            for idx, w_i in ((cen_idx, w_cen), (clip_idx, w_clip)):
-                ok_i = ok[event[idx]]
-                weight_row[idx] = np.where(ok_i, w_i, 0.0)
-                used_nd_row[idx] = ok_i
-            n_cens_used = np.bincount(event[cen_idx[ok[event[cen_idx]]]], minlength=n_events)
-    else:
-        uncorrected[event[informative]] = True
-        uncorrected[event[clip_ok]] = True
+    clip_ok = rs.clipped & has_estimate[event]
+    if not use_nondetections:
+        out.uncorrected[event[informative]] = True
+        out.uncorrected[event[clip_ok]] = True
+        return out
+    cen_idx = np.flatnonzero(informative)
+    clip_idx = np.flatnonzero(clip_ok)
+    tob_ev = np.zeros(n_events, dtype=bool)
+    tob_ev[event[cen_idx]] = True
+    tob_ev[event[clip_idx]] = True
+    if not np.any(tob_ev):
+        return out
+    ev, rows = rs.ev, rs.rows
+    drow = np.flatnonzero(tob_ev[ev])
+    data = CensoredEventData(
+        n_events=n_events,
+        det_event=ev[drow],
+        det_value=rs.y[drow],
+        det_precision=w[drow] * est.gls.precision[ev[drow]],
+        cen_event=event[cen_idx],
+        cen_value=obs.threshold[cen_idx] - rp.bias[cen_idx],
+        cen_scale=scale_nd[cen_idx],
+        clip_event=event[clip_idx],
+        clip_value=obs.magnitude[clip_idx] - rp.bias[clip_idx],
+        clip_scale=np.sqrt(rp.sigma2[clip_idx] + rp.bias_var[clip_idx]),
+    )
+    fit = fit_censored(data, np.where(tob_ev, M_gls, np.nan), max_iter=int(censoring_max_iter))
+    ok = tob_ev & fit.converged
+    failed = tob_ev & ~fit.converged
+    out.magnitude[ok] = fit.magnitude[ok]
+    out.se[ok] = np.where(est.inconsistent[ok], fit.se[ok] * np.abs(est.z_two[ok]), fit.se[ok])
+    out.shift[ok] = fit.magnitude[ok] - M_gls[ok]
+    out.method[ok] = EstimateMethod.censored_ml.value
+    out.n_iter[tob_ev] += fit.n_iter[tob_ev]
+    out.converged[failed] = False
+    out.not_converged |= failed
+    out.uncorrected |= failed
+    # Row weights ∂M̂/∂v (they sum to 1 over the event's rows).
+    w_det, w_cen, w_clip = row_sensitivities(data, np.where(ok, out.magnitude, 0.0))
+    out.weight_row[rows[drow]] = np.where(ok[ev[drow]], w_det, w[drow])
+    for idx, w_i in ((cen_idx, w_cen), (clip_idx, w_clip)):
+        ok_i = ok[event[idx]]
+        out.weight_row[idx] = np.where(ok_i, w_i, 0.0)
+        out.used_nd_row[idx] = ok_i
+    out.n_cens_used = np.bincount(event[cen_idx[ok[event[cen_idx]]]], minlength=n_events)
+    return out
 
-    # -- finishing ------------------------------------------------------------------------
-    propagate_bad = np.zeros(n_events, dtype=bool)
-    if nan_policy == "propagate":
-        propagate_bad[event[invalid]] = True
-        magnitude[propagate_bad] = np.nan
-        se[propagate_bad] = np.nan
-        method[propagate_bad] = EstimateMethod.none.value
-    half = float(special.ndtri(0.5 + 0.5 * confidence_level)) * se
-    gr_post = np.full(n_events, np.nan)
-    if gr_b_value is not None:
-        gr_post = magnitude - float(gr_b_value) * math.log(10.0) * se * se
-    se_scaled = se * np.where(np.isfinite(birge), np.maximum(1.0, birge), 1.0)
 
-    # Event flags.
+def _flags(
+    obs: ObservationSet,
+    rp: _RowParameters,
+    rs: _RowStates,
+    est: _GlsEstimate,
+    diag: _Diagnostics,
+    cen: _Censored,
+    propagate_bad: NDArray[np.bool_],
+) -> _Flags:
+    """Event and row flags (module docstring) as text categories."""
+    n_events, event, counts = obs.n_events, obs.event, rs.counts
     unknown_ev = np.zeros(n_events, dtype=bool)
-    unknown_ev[event[~known & det & finite]] = True
-    outlier_ev = np.bincount(ev, weights=outlier_row, minlength=n_events) > 0
+    unknown_ev[event[~rp.known & rs.det & rs.finite]] = True
+    outlier_ev = np.bincount(rs.ev, weights=diag.outlier_row, minlength=n_events) > 0
     invalid_ev = np.zeros(n_events, dtype=bool)
-    invalid_ev[event[invalid]] = True
-    no_det = ~np.isfinite(magnitude) & ~propagate_bad
+    invalid_ev[event[rs.invalid]] = True
+    no_det = ~np.isfinite(cen.magnitude) & ~propagate_bad
     ebits = np.zeros(n_events, dtype=np.int64)
     for flag, mask in (
         (EventFlag.no_detection, no_det),
         (EventFlag.single_station, counts == 1),
-        (EventFlag.inconsistent, inconsistent),
-        (EventFlag.negative_weight, neg_w),
+        (EventFlag.inconsistent, est.inconsistent),
+        (EventFlag.negative_weight, diag.neg_w),
         (EventFlag.unknown_station, unknown_ev),
         (EventFlag.outlier, outlier_ev),
-        (EventFlag.not_converged, not_conv & (counts > 0)),
-        (EventFlag.censoring_used, method == EstimateMethod.censored_ml.value),
-        (EventFlag.censoring_uncorrected, uncorrected),
+        (EventFlag.not_converged, cen.not_converged & (counts > 0)),
+        (EventFlag.censoring_used, cen.method == EstimateMethod.censored_ml.value),
+        (EventFlag.censoring_uncorrected, cen.uncorrected),
         (EventFlag.invalid_magnitude, invalid_ev),
     ):
         ebits |= np.where(mask, _bit(flag), 0)
     etext, einv = _flag_text(ebits, tuple(str(f) for f in _EVENT_FLAGS))
-
-    # Row flags.
     rbits = np.zeros(obs.n_obs, dtype=np.int64)
     out_full = np.zeros(obs.n_obs, dtype=bool)
-    out_full[rows] = outlier_row
+    out_full[rs.rows] = diag.outlier_row
     for rflag, rmask in (
         (RowFlag.outlier, out_full),
-        (RowFlag.unknown_station, ~known),
-        (RowFlag.prior_dominated, prior_row & known),
-        (RowFlag.negative_weight, weight_row < 0.0),
-        (RowFlag.clipped, clipped),
-        (RowFlag.non_detection, ~det),
-        (RowFlag.censoring_used, used_nd_row),
-        (RowFlag.invalid_magnitude, invalid),
+        (RowFlag.unknown_station, ~rp.known),
+        (RowFlag.prior_dominated, rp.prior_row & rp.known),
+        (RowFlag.negative_weight, cen.weight_row < 0.0),
+        (RowFlag.clipped, rs.clipped),
+        (RowFlag.non_detection, ~rs.det),
+        (RowFlag.censoring_used, cen.used_nd_row),
+        (RowFlag.invalid_magnitude, rs.invalid),
     ):
         rbits |= np.where(rmask, _bit(rflag), 0)
     rtext, rinv = _flag_text(rbits, tuple(str(f) for f in _ROW_FLAGS))
+    return _Flags(
+        no_detection=no_det, event_text=etext, event_codes=einv, row_text=rtext, row_codes=rinv
+    )
 
+
+def _warn_events(
+    obs: ObservationSet, no_det: NDArray[np.bool_], bad_conv: NDArray[np.bool_]
+) -> None:
+    """Warn about events without a usable detection and events that did not converge."""
     if np.any(no_det):
         warnings.warn(
-            f"{int(no_det.sum())} of {n_events} events have no usable detection; their "
+            f"{int(no_det.sum())} of {obs.n_events} events have no usable detection; their "
             "magnitude is NaN (flag 'no-detection')",
             DegenerateDataWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
-    bad_conv = not_conv & (counts > 0)
     if np.any(bad_conv):
         first = obs.event_ids[int(np.flatnonzero(bad_conv)[0])]
         warnings.warn(
             f"{int(bad_conv.sum())} events did not converge (first: {first!r}); they keep "
             "their last iterate or GLS value and are flagged 'not-converged'",
             ConvergenceWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
 
-    # -- tables ---------------------------------------------------------------------------
+
+def _event_table(
+    obs: ObservationSet,
+    rs: _RowStates,
+    est: _GlsEstimate,
+    diag: _Diagnostics,
+    cen: _Censored,
+    flags: _Flags,
+    *,
+    confidence_level: float,
+    gr_b_value: float | None,
+) -> pd.DataFrame:
+    """The event table of :class:`FusedMagnitudes` (columns: ``EVENT_COLUMNS``)."""
+    n_events = obs.n_events
+    magnitude, se = cen.magnitude, cen.se
+    half = float(special.ndtri(0.5 + 0.5 * confidence_level)) * se
+    gr_post = np.full(n_events, np.nan)
+    if gr_b_value is not None:
+        gr_post = magnitude - float(gr_b_value) * math.log(10.0) * se * se
+    se_scaled = se * np.where(np.isfinite(diag.birge), np.maximum(1.0, diag.birge), 1.0)
     infl_station = np.full(n_events, None, dtype=object)
-    has_infl = infl_row >= 0
-    infl_station[has_infl] = obs.station_ids[obs.station[rows[infl_row[has_infl]]]]
+    has_infl = diag.infl_row >= 0
+    infl_station[has_infl] = obs.station_ids[obs.station[rs.rows[diag.infl_row[has_infl]]]]
     origin = pd.DatetimeIndex(obs.event_time.astype("datetime64[us]")).tz_localize("UTC")
-    events = pd.DataFrame(
+    return pd.DataFrame(
         {
             "event_id": obs.event_ids.astype(object),
             "origin_time": origin,
@@ -1184,61 +1424,75 @@ def fuse_events(
             "ci_low": magnitude - half,
             "ci_high": magnitude + half,
             "confidence_level": np.full(n_events, float(confidence_level)),
-            "n_stations": counts,
-            "n_eff": n_eff,
-            "chi2": chi2,
-            "birge_ratio": birge,
+            "n_stations": rs.counts,
+            "n_eff": diag.n_eff,
+            "chi2": diag.chi2,
+            "birge_ratio": diag.birge,
             "se_scaled": se_scaled,
-            "plain_mean": plain_mean,
-            "median": median,
-            "minus_plain_mean": magnitude - plain_mean,
-            "max_influence": max_infl,
+            "plain_mean": diag.plain_mean,
+            "median": diag.median,
+            "minus_plain_mean": magnitude - diag.plain_mean,
+            "max_influence": diag.max_infl,
             "max_influence_station": infl_station,
-            "max_abs_z": max_abs_z,
-            "jackknife_se": jack,
-            "prior_weight_share": prior_share,
-            "n_nondetections_used": np.asarray(n_cens_used, dtype=np.int64),
-            "censoring_shift": np.where(np.isfinite(magnitude), shift, np.nan),
-            "flags": np.asarray(etext, dtype=object)[einv],
-            "method": method,
-            "converged": converged,
-            "n_iter": n_iter,
+            "max_abs_z": diag.max_abs_z,
+            "jackknife_se": diag.jack,
+            "prior_weight_share": diag.prior_share,
+            "n_nondetections_used": np.asarray(cen.n_cens_used, dtype=np.int64),
+            "censoring_shift": np.where(np.isfinite(magnitude), cen.shift, np.nan),
+            "flags": np.asarray(flags.event_text, dtype=object)[flags.event_codes],
+            "method": cen.method,
+            "converged": cen.converged,
+            "n_iter": cen.n_iter,
             "gr_posterior_mean": gr_post,
         },
         copy=False,
     )
 
-    corrected = mag - bias
-    residual = np.where(det & finite, corrected - magnitude[event], np.nan)
+
+def _contribution_table(
+    obs: ObservationSet,
+    params: StationParameters,
+    rp: _RowParameters,
+    rs: _RowStates,
+    est: _GlsEstimate,
+    cen: _Censored,
+    flags: _Flags,
+) -> pd.DataFrame:
+    """The contribution table of :class:`FusedMagnitudes`, one row per observation."""
+    mag, det, rows = obs.magnitude, rs.det, rs.rows
+    corrected = mag - rp.bias
+    residual = np.where(det & rs.finite, corrected - cen.magnitude[obs.event], np.nan)
     robust_row = np.full(obs.n_obs, np.nan)
-    robust_row[rows] = omega
+    robust_row[rows] = est.rob.omega
     influence_row = np.full(obs.n_obs, np.nan)
-    influence_row[rows] = gls.influence
+    influence_row[rows] = est.gls.influence
     z_row = np.full(obs.n_obs, np.nan)
-    z_row[rows] = z
+    z_row[rows] = est.z
+    n_units = params.n_units
     unit_ids = pd.Index(params.unit_ids.astype(str)) if n_units else pd.Index([], dtype=object)
-    contributions = pd.DataFrame(
+    return pd.DataFrame(
         {
-            "event_id": pd.Categorical.from_codes(event, categories=pd.Index(obs.event_ids)),
+            "event_id": pd.Categorical.from_codes(obs.event, categories=pd.Index(obs.event_ids)),
             "station_id": pd.Categorical.from_codes(
                 obs.station, categories=pd.Index(obs.station_ids)
             ),
-            "unit_id": pd.Categorical.from_codes(unit, categories=unit_ids),
+            "unit_id": pd.Categorical.from_codes(rp.unit, categories=unit_ids),
             "detected": det.copy(),
             "magnitude": mag.copy(),
             "threshold": obs.threshold.copy(),
-            "correction": 0.0 - bias + 0.0,
+            "correction": 0.0 - rp.bias + 0.0,
             "corrected_magnitude": corrected,
-            "weight": weight_row,
+            "weight": cen.weight_row,
             "robust_weight": robust_row,
             "residual": residual,
             "influence": influence_row,
             "z": z_row,
-            "flags": pd.Categorical.from_codes(rinv, categories=pd.Index(rtext)),
+            "flags": pd.Categorical.from_codes(
+                flags.row_codes, categories=pd.Index(flags.row_text)
+            ),
         },
         copy=False,  # every array here is freshly computed or copied: no consolidation copy
     )
-    return FusedMagnitudes(events=events, contributions=contributions)
 
 
 def _check_parameters(params: StationParameters) -> None:

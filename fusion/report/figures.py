@@ -190,10 +190,36 @@ def draw_station(fig: Any, d: StationPanelData) -> None:
     """Draw the four station panels on an empty figure: offset over time with epochs and
     alarms; residual histogram against the model's distribution; residual against distance
     and against magnitude with the fitted trends."""
+    (ax_t, ax_h), (ax_d, ax_m) = fig.subplots(2, 2)
+    _offset_panel(ax_t, d)
+    _residual_histogram(ax_h, d)
+    # (c), (d) residual against distance and magnitude with the trends.
+    for ax, x, line, xlabel, title, logx in (
+        (
+            ax_d,
+            d.distance_km,
+            d.dist_line,
+            "epicentral distance (km)",
+            "(c) residual against distance",
+            True,
+        ),
+        (
+            ax_m,
+            d.magnitude,
+            d.mag_line,
+            f"network magnitude ({_MAG})",
+            "(d) residual against magnitude",
+            False,
+        ),
+    ):
+        _trend_panel(ax, d, x, line, xlabel, title, logx=logx)
+    fig.suptitle(f"Station {d.station_id}")
+
+
+def _offset_panel(ax_t: Any, d: StationPanelData) -> None:
+    """(a) Offset m − M̂ over time, the bias of each epoch with its interval, drift alarms."""
     ok_out = d.outlier
     inl = ~ok_out
-    (ax_t, ax_h), (ax_d, ax_m) = fig.subplots(2, 2)
-    # (a) offset over time.
     ax_t.plot(
         d.time[inl],
         d.offset[inl],
@@ -249,7 +275,9 @@ def draw_station(fig: Any, d: StationPanelData) -> None:
     for lab in ax_t.get_xticklabels():
         lab.set_rotation(20)
 
-    # (b) residual histogram against the model.
+
+def _residual_histogram(ax_h: Any, d: StationPanelData) -> None:
+    """(b) Histogram of the residuals against the model's distribution N(0, s²(1 − w))."""
     r = d.residual
     fin = r[np.isfinite(r)]
     if fin.shape[0]:
@@ -280,71 +308,66 @@ def draw_station(fig: Any, d: StationPanelData) -> None:
     if ax_h.get_legend_handles_labels()[0]:
         ax_h.legend(loc="upper left")
 
-    # (c), (d) residual against distance and magnitude with the trends.
-    for ax, x, line, xlabel, title, logx in (
-        (
-            ax_d,
-            d.distance_km,
-            d.dist_line,
-            "epicentral distance (km)",
-            "(c) residual against distance",
-            True,
-        ),
-        (
-            ax_m,
-            d.magnitude,
-            d.mag_line,
-            f"network magnitude ({_MAG})",
-            "(d) residual against magnitude",
-            False,
-        ),
-    ):
-        ok = np.isfinite(x) & np.isfinite(r) & (x > 0 if logx else True)
-        if np.any(ok & inl):
-            ax.plot(
-                x[ok & inl],
-                r[ok & inl],
-                ".",
-                ms=2.5,
-                color=ROLE["station"],
-                alpha=0.5,
-                rasterized=True,
-                label="reading",
-            )
-        if np.any(ok & ok_out):
-            ax.plot(
-                x[ok & ok_out],
-                r[ok & ok_out],
-                "x",
-                ms=4,
-                color=ROLE["outlier"],
-                label="outlier",
-            )
-        for u in range(line.shape[0]):
-            icp, slope, x0, x1 = line[u]
-            if not np.isfinite(slope):
-                continue
-            xs = np.linspace(x0, x1, 20)
-            xp = 10.0**xs if logx else xs
-            ax.plot(
-                xp,
-                icp + slope * xs,
-                "-.",
-                color=ROLE["trend"],
-                lw=1.6,
-                label="fitted trend" if u == 0 else None,
-            )
-        ax.axhline(0.0, color=ROLE["network"], lw=0.8)
-        if logx and np.any(ok):
-            _log_distance_axis(ax)
-        if not np.any(ok):
-            ax.text(0.5, 0.5, "no values", ha="center", va="center", transform=ax.transAxes)
-        ax.set_xlabel(xlabel)
-        ax.set_ylabel(f"residual ({_MAG})")
-        ax.set_title(title)
-        if ax.get_legend_handles_labels()[0]:
-            ax.legend(loc="upper right")
-    fig.suptitle(f"Station {d.station_id}")
+
+def _trend_panel(
+    ax: Any,
+    d: StationPanelData,
+    x: NDArray[np.float64],
+    line: NDArray[np.float64],
+    xlabel: str,
+    title: str,
+    *,
+    logx: bool,
+) -> None:
+    """(c), (d) Residual against distance or magnitude, with the fitted trend per unit."""
+    r = d.residual
+    ok_out = d.outlier
+    inl = ~ok_out
+    ok = np.isfinite(x) & np.isfinite(r) & (x > 0 if logx else True)
+    if np.any(ok & inl):
+        ax.plot(
+            x[ok & inl],
+            r[ok & inl],
+            ".",
+            ms=2.5,
+            color=ROLE["station"],
+            alpha=0.5,
+            rasterized=True,
+            label="reading",
+        )
+    if np.any(ok & ok_out):
+        ax.plot(
+            x[ok & ok_out],
+            r[ok & ok_out],
+            "x",
+            ms=4,
+            color=ROLE["outlier"],
+            label="outlier",
+        )
+    for u in range(line.shape[0]):
+        icp, slope, x0, x1 = line[u]
+        if not np.isfinite(slope):
+            continue
+        xs = np.linspace(x0, x1, 20)
+        xp = 10.0**xs if logx else xs
+        ax.plot(
+            xp,
+            icp + slope * xs,
+            "-.",
+            color=ROLE["trend"],
+            lw=1.6,
+            label="fitted trend" if u == 0 else None,
+        )
+    ax.axhline(0.0, color=ROLE["network"], lw=0.8)
+    if logx and np.any(ok):
+        _log_distance_axis(ax)
+    if not np.any(ok):
+        ax.text(0.5, 0.5, "no values", ha="center", va="center", transform=ax.transAxes)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(f"residual ({_MAG})")
+    ax.set_title(title)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="upper right")
 
 
 def _log_distance_axis(ax: Any) -> None:

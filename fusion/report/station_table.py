@@ -40,7 +40,7 @@ n_drift_alarms        drift alarms whose alarm time lies in the unit's epoch
 drift_alarms          'change → alarm (up/down)' dates, '; '-joined
 ===================== =====================================================================
 
-Trend t ratios and the |t| > 3 rule: :mod:`fusion.report.trends`. ``residual-offset`` uses the
+Trend t ratios and the |t| > 3 rule: :mod:`fusion.model.diagnostics`. ``residual-offset`` uses the
 same rule on the mean residual: under the model each residual has mean 0, so a mean residual
 with |t| > 3 says the bias has moved since the fit (or the unit's window residuals are skewed by
 detection, docs/censoring.md §9).
@@ -60,11 +60,17 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
-from scipy import special, stats
+from scipy import special
 
+from fusion.model.diagnostics import (
+    TREND_T_ALARM,
+    grouped_weighted_mean,
+    grouped_wls_slope,
+    sigma_interval,
+    unit_usage,
+)
 from fusion.report.inputs import ReportInputs, as_bool, codes_in
 from fusion.report.joined import JoinedRows, join_rows
-from fusion.report.trends import TREND_T_ALARM, grouped_wls_slope
 from stations.errors import ConfigError
 
 __all__ = [
@@ -123,27 +129,6 @@ def _check_level(level: float, where: str) -> None:
             f"The 'level' parameter of {where} must be a float in the range (0, 1). "
             f"Got {level!r} instead."
         )
-
-
-def sigma_interval(
-    sigma: NDArray[np.float64], dof: NDArray[np.float64], level: float
-) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Chi-square interval of an SD estimated with ``dof`` degrees of freedom.
-
-    (d s²/χ²_d(1 − α/2), d s²/χ²_d(α/2)) for σ², square-rooted; α = 1 − level. NaN where
-    dof is not > 0. (The textbook interval for a normal variance, e.g. NIST/SEMATECH
-    e-Handbook of Statistical Methods §7.2.6.1 [from memory: section number].)
-    """
-    d = np.asarray(dof, dtype=np.float64)
-    ok = np.isfinite(d) & (d > 0.0)
-    dd = np.where(ok, d, 1.0)
-    alpha = 1.0 - float(level)
-    hi_q = stats.chi2.ppf(1.0 - alpha / 2.0, dd)
-    lo_q = stats.chi2.ppf(alpha / 2.0, dd)
-    low = np.where(ok, sigma * np.sqrt(dd / hi_q), np.nan)
-    with np.errstate(divide="ignore"):
-        high = np.where(ok, sigma * np.sqrt(dd / lo_q), np.nan)
-    return low, high
 
 
 def _flag_text(bits: NDArray[np.int64]) -> NDArray[np.object_]:
@@ -337,37 +322,18 @@ def station_reliability_table(
     rank = pd.Series(sigma).rank(method="min").to_numpy()
 
     # -- window figures per unit ---------------------------------------------------------
-    known = jr.unit >= 0
-    det = known & jr.detected
-    n_read = np.bincount(jr.unit[det], minlength=K).astype(np.int64)
     n_est = int(np.count_nonzero(np.isfinite(pd.to_numeric(inputs.events["magnitude"]))))
-    w_ok = known & np.isfinite(jr.weight)
-    w_sum = np.bincount(jr.unit[w_ok], weights=jr.weight[w_ok], minlength=K)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        weight_share = w_sum / n_est if n_est else np.full(K, np.nan)
-        mean_weight = np.where(n_read > 0, w_sum / np.maximum(n_read, 1), np.nan)
-    has_rw = det & np.isfinite(jr.robust_weight)
-    n_rw = np.bincount(jr.unit[has_rw], minlength=K)
-    n_out = np.bincount(jr.unit[has_rw & (jr.robust_weight < outlier_weight)], minlength=K)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        outlier_rate = np.where(n_rw > 0, n_out / np.maximum(n_rw, 1), np.nan)
+    usage = unit_usage(
+        jr.unit, jr.detected, jr.weight, jr.robust_weight, K, n_est, outlier_weight=outlier_weight
+    )
+    n_read, weight_share = usage.n_readings, usage.weight_share
+    mean_weight, outlier_rate = usage.mean_weight, usage.outlier_rate
 
     a = jr.analysable
     rw = np.where(np.isfinite(jr.robust_weight), jr.robust_weight, 1.0)
     g = np.where(a, jr.unit, -1)
-    sw = np.bincount(g[a], weights=rw[a], minlength=K)
-    n_a = np.bincount(g[a], minlength=K)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        r_mean = np.bincount(g[a], weights=rw[a] * jr.residual[a], minlength=K) / sw
-        dr = jr.residual[a] - r_mean[g[a]]
-        ss = np.bincount(g[a], weights=rw[a] * dr * dr, minlength=K)
-        r_sd = np.sqrt(ss / np.maximum(n_a - 1, 1) * n_a / sw)  # robust-weighted SD
-        r_se = np.sqrt(ss / np.maximum(n_a - 1, 1) / sw)
-        r_t = r_mean / r_se
-    few = n_a < max(int(min_trend_rows), 2)
-    r_mean = np.where(n_a > 0, r_mean, np.nan)
-    r_sd = np.where(n_a > 1, r_sd, np.nan)
-    r_t = np.where(few, np.nan, r_t)
+    offset = grouped_weighted_mean(g, jr.residual, rw, K, min_rows=min_trend_rows)
+    r_mean, r_sd, r_t = offset.mean, offset.sd, offset.t
 
     with np.errstate(invalid="ignore", divide="ignore"):
         logd = np.log10(jr.distance_km)

@@ -32,6 +32,12 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from fusion.advisory import ADVISORY
+from fusion.model.diagnostics import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
+from fusion.network.summaries import (
+    censoring_summary,
+    difference_summary,
+    plain_mean_difference,
+)
 from fusion.report.event_figure import event_figure_png, event_picture_from_tables
 from fusion.report.figures import (
     StationPanelData,
@@ -49,8 +55,6 @@ from fusion.report.station_table import (
     station_reliability_table,
     write_station_table,
 )
-from fusion.report.trends import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
-from fusion.workflows.dry_run import censoring_summary
 from stations.errors import ConfigError
 
 __all__ = ["ReportFiles", "write_station_report"]
@@ -335,36 +339,114 @@ def write_station_report(
         outlier_rate_alert=outlier_rate_alert,
         joined=jr,
     )
-    out = Path(out_dir)
+    paths = _write_tables(inputs, st, Path(out_dir), since, level)
+    t_tables = time.perf_counter() - t0
+
+    t1 = time.perf_counter()
+    ev = win.events
+    cx = _Context(
+        inputs=inputs,
+        win=win,
+        jr=jr,
+        st=st,
+        ev=ev,
+        ev_ids=ev["event_id"].astype(str).to_numpy(dtype=object),
+        sections=select_section_stations(
+            st, max_sections=max_station_sections, top_by_weight=top_by_weight
+        ),
+        level=level,
+        outlier_weight=outlier_weight,
+        min_trend_rows=min_trend_rows,
+    )
+    title = f"Station reliability report, {inputs.magnitude_type or 'magnitude'}"
+    _head_part(cx, title, since)
+    _summary_part(cx, n_affected_events=n_affected_events, n_event_pictures=n_event_pictures)
+    links = _station_table_part(cx, paths)
+    _sections_part(
+        cx,
+        links,
+        top_by_weight=top_by_weight,
+        max_station_sections=max_station_sections,
+        max_outliers_listed=max_outliers_listed,
+    )
+    _pairs_part(cx, max_pairs_listed)
+    cx.pg.add('<h2 id="drift">Drift alarms</h2>')
+    cx.pg.add(_drift_rows(win))
+    _events_part(cx)
+    _notes_part(cx, trend_t, min_trend_rows, outlier_weight, outlier_rate_alert)
+    t_fig = time.perf_counter() - t1
+
+    t2 = time.perf_counter()
+    paths.html.write_text(page(title, "\n".join(cx.pg.parts)), encoding="utf-8")
+    return ReportFiles(
+        html=paths.html,
+        station_csv=paths.csv,
+        station_parquet=paths.parquet,
+        n_figures=cx.pg.n_figures,
+        section_stations=tuple(cx.sections),
+        n_units=len(st),
+        n_events=len(ev),
+        seconds={"tables": t_tables, "figures": t_fig, "html": time.perf_counter() - t2},
+    )
+
+
+# -- the steps of write_station_report ---------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class _Paths:
+    """The three output files."""
+
+    csv: Path
+    parquet: Path
+    html: Path
+
+
+@dataclass(slots=True, eq=False)
+class _Context:
+    """What every part of the page reads, and what the parts collect (page, event links)."""
+
+    inputs: ReportInputs
+    win: ReportInputs  # inputs cut to the report window
+    jr: JoinedRows
+    st: pd.DataFrame  # station reliability table
+    ev: pd.DataFrame
+    ev_ids: NDArray[np.object_]
+    sections: list[str]
+    level: float
+    outlier_weight: float
+    min_trend_rows: int
+    pg: _Page = field(default_factory=lambda: _Page())
+    referenced: set[int] = field(default_factory=set)
+
+
+def _write_tables(
+    inputs: ReportInputs, st: pd.DataFrame, out: Path, since: Any, level: float
+) -> _Paths:
+    """Write the station table as CSV and Parquet (with its metadata); name the HTML file."""
     out.mkdir(parents=True, exist_ok=True)
     mtype = _slug(inputs.magnitude_type)
-    csv_path = out / f"station_reliability_{mtype}.csv"
-    pq_path = out / f"station_reliability_{mtype}.parquet"
-    html_path = out / f"station_report_{mtype}.html"
+    paths = _Paths(
+        csv=out / f"station_reliability_{mtype}.csv",
+        parquet=out / f"station_reliability_{mtype}.parquet",
+        html=out / f"station_report_{mtype}.html",
+    )
     meta = {
         "magfuse.model_version": str(inputs.model_meta.get("version", "")),
         "magfuse.magnitude_type": inputs.magnitude_type,
         "magfuse.interval_level": repr(float(level)),
         "magfuse.report_since": "" if since is None else str(to_utc_timestamp(since)),
     }
-    write_station_table(st, csv_path, pq_path, metadata=meta)
-    t_tables = time.perf_counter() - t0
+    write_station_table(st, paths.csv, paths.parquet, metadata=meta)
+    return paths
 
-    t1 = time.perf_counter()
-    pg = _Page()
-    ev = win.events
-    n_events = len(ev)
-    ev_ids = ev["event_id"].astype(str).to_numpy(dtype=object)
-    referenced: set[int] = set()
-    sections = select_section_stations(
-        st, max_sections=max_station_sections, top_by_weight=top_by_weight
-    )
-    att = attention_mask(st)
 
-    title = f"Station reliability report, {inputs.magnitude_type or 'magnitude'}"
+def _head_part(cx: _Context, title: str, since: Any) -> None:
+    """1. Title, caution, model block and navigation."""
+    pg = cx.pg
     pg.add(f"<h1>{esc(title)}</h1>")
     pg.add(f'<p class="caution"><b>Caution.</b> {esc(ADVISORY)}</p>')
-    pg.add(_meta_block(inputs, since, level))
+    pg.add(_meta_block(cx.inputs, since, cx.level))
     pg.add(
         '<nav><a href="#summary">Network summary</a><a href="#stations">Station table</a>'
         '<a href="#sections">Station sections</a><a href="#pairs">Correlated pairs</a>'
@@ -372,12 +454,13 @@ def write_station_report(
         '<a href="#notes">Notes</a></nav>'
     )
 
-    # 2. network summary -----------------------------------------------------------------
-    d = pd.to_numeric(ev["magnitude"]).to_numpy(dtype=float) - pd.to_numeric(
-        ev["plain_mean"]
-    ).to_numpy(dtype=float)
-    if "minus_plain_mean" in ev.columns:
-        d = pd.to_numeric(ev["minus_plain_mean"]).to_numpy(dtype=float)
+
+def _summary_part(cx: _Context, *, n_affected_events: int, n_event_pictures: int) -> None:
+    """2. Network summary: text, censoring paragraph, σ ranking, shift over time, top events."""
+    pg, ev, st, level = cx.pg, cx.ev, cx.st, cx.level
+    n_events = len(ev)
+    att = attention_mask(st)
+    d = plain_mean_difference(ev)
     fin = np.isfinite(d)
     pg.add('<h2 id="summary">Network summary</h2>')
     summary = (
@@ -385,12 +468,12 @@ def write_station_report(
         f"{n_events} events in the report window, {int(np.count_nonzero(att))} units need "
         f"attention. Median error SD {np.nanmedian(st['sigma']):.3f}. "
     )
-    if np.any(fin):
+    ds = difference_summary(d)
+    if ds["n"]:
         summary += (
-            f"Network magnitude minus plain mean: median {np.median(d[fin]):+.3f}, "
-            f"90 % of events within [{np.quantile(d[fin], 0.05):+.3f}, "
-            f"{np.quantile(d[fin], 0.95):+.3f}], "
-            f"{int(np.count_nonzero(np.abs(d[fin]) >= 0.1))} events moved by 0.1 or more."
+            f"Network magnitude minus plain mean: median {ds['median']:+.3f}, "
+            f"90 % of events within [{ds['q05']:+.3f}, {ds['q95']:+.3f}], "
+            f"{ds['n_ge_0_1']} events moved by 0.1 or more."
         )
     pg.add(f"<p>{esc(summary)}</p>")
     cens_text = _censoring_text(ev)
@@ -411,46 +494,58 @@ def write_station_report(
         )
     if np.any(fin) and n_affected_events:
         top = np.flatnonzero(fin)[np.argsort(-np.abs(d[fin]), kind="stable")][:n_affected_events]
-        referenced.update(int(c) for c in top)
-        pg.add("<h3>Events most affected</h3>")
-        pg.add(
-            table(
-                [
-                    ("event", _event_links(top, ev_ids), True),
-                    ("origin time (UTC)", _times(ev, top), True),
-                    ("network", fmt(pd.to_numeric(ev["magnitude"]).to_numpy()[top], ".2f"), False),
-                    ("SE", fmt(pd.to_numeric(ev["se"]).to_numpy()[top], ".2f"), False),
-                    (
-                        "plain mean",
-                        fmt(pd.to_numeric(ev["plain_mean"]).to_numpy()[top], ".2f"),
-                        False,
-                    ),
-                    ("difference", fmt(d[top], "+.2f"), False),
-                    (
-                        "stations",
-                        fmt(pd.to_numeric(ev["n_stations"]).to_numpy()[top], ".0f"),
-                        False,
-                    ),
-                    ("most influential", _text_col(ev, "max_influence_station", top), True),
-                    ("flags", _text_col(ev, "flags", top), True),
-                ]
-            )
-        )
-        if n_event_pictures:
-            ev_order, ev_start = _event_index(jr, n_events)
-            for c in top[:n_event_pictures].tolist():
-                rows = ev_order[ev_start[c] : ev_start[c + 1]]
-                pic = event_picture_from_tables(
-                    ev.iloc[c].to_dict(),
-                    win.contributions.iloc[rows],
-                    stations=win.stations,
-                    coordinates=win.coordinates,
-                    outlier_weight=outlier_weight,
-                )
-                pg.figure(event_figure_png(pic), f"event picture of {ev_ids[c]}")
+        _affected_events(cx, top, d, n_event_pictures)
 
-    # 3. station table -------------------------------------------------------------------
-    sec_of = {s: i for i, s in enumerate(sections)}
+
+def _affected_events(
+    cx: _Context, top: NDArray[np.int64], d: NDArray[np.float64], n_event_pictures: int
+) -> None:
+    """The events most affected (table) and the pictures of the first ``n_event_pictures``."""
+    pg, ev, ev_ids = cx.pg, cx.ev, cx.ev_ids
+    cx.referenced.update(int(c) for c in top)
+    pg.add("<h3>Events most affected</h3>")
+    pg.add(
+        table(
+            [
+                ("event", _event_links(top, ev_ids), True),
+                ("origin time (UTC)", _times(ev, top), True),
+                ("network", fmt(pd.to_numeric(ev["magnitude"]).to_numpy()[top], ".2f"), False),
+                ("SE", fmt(pd.to_numeric(ev["se"]).to_numpy()[top], ".2f"), False),
+                (
+                    "plain mean",
+                    fmt(pd.to_numeric(ev["plain_mean"]).to_numpy()[top], ".2f"),
+                    False,
+                ),
+                ("difference", fmt(d[top], "+.2f"), False),
+                (
+                    "stations",
+                    fmt(pd.to_numeric(ev["n_stations"]).to_numpy()[top], ".0f"),
+                    False,
+                ),
+                ("most influential", _text_col(ev, "max_influence_station", top), True),
+                ("flags", _text_col(ev, "flags", top), True),
+            ]
+        )
+    )
+    if not n_event_pictures:
+        return
+    ev_order, ev_start = _event_index(cx.jr, len(ev))
+    for c in top[:n_event_pictures].tolist():
+        rows = ev_order[ev_start[c] : ev_start[c + 1]]
+        pic = event_picture_from_tables(
+            ev.iloc[c].to_dict(),
+            cx.win.contributions.iloc[rows],
+            stations=cx.win.stations,
+            coordinates=cx.win.coordinates,
+            outlier_weight=cx.outlier_weight,
+        )
+        pg.figure(event_figure_png(pic), f"event picture of {ev_ids[c]}")
+
+
+def _station_table_part(cx: _Context, paths: _Paths) -> NDArray[np.object_]:
+    """3. The station table, every unit; returns the station cells (links to sections)."""
+    st = cx.st
+    sec_of = {s: i for i, s in enumerate(cx.sections)}
     sid = st["station_id"].to_numpy(dtype=object)
     links = np.array(
         [
@@ -460,152 +555,184 @@ def write_station_report(
         dtype=object,
     )
     order = np.argsort(st["sigma"].to_numpy(dtype=float), kind="stable")
-    pg.add('<h2 id="stations">Station table</h2>')
-    pg.add(
+    cx.pg.add('<h2 id="stations">Station table</h2>')
+    cx.pg.add(
         f'<p class="muted">All {len(st)} units, smallest error SD first. Stations with a '
         "section are links. The same table, with more columns, is in "
-        f"{esc(csv_path.name)} and {esc(pq_path.name)}.</p>"
+        f"{esc(paths.csv.name)} and {esc(paths.parquet.name)}.</p>"
     )
-    pg.add(_station_rows(st, links, order, level))
+    cx.pg.add(_station_rows(st, links, order, cx.level))
+    return links
 
-    # 4. station sections ----------------------------------------------------------------
-    pg.add('<h2 id="sections">Station sections</h2>')
-    pg.add(
+
+def _sections_part(
+    cx: _Context,
+    links: NDArray[np.object_],
+    *,
+    top_by_weight: int,
+    max_station_sections: int,
+    max_outliers_listed: int,
+) -> None:
+    """4. One section per selected station (rule: :mod:`fusion.report.sections`)."""
+    st, sections = cx.st, cx.sections
+    cx.pg.add('<h2 id="sections">Station sections</h2>')
+    cx.pg.add(
         f'<p class="muted">{len(sections)} of {st["station_id"].nunique()} stations have a '
         f"section: the {min(top_by_weight, max_station_sections)} with the largest weight share, "
         "then stations with attention flags, most flags and strongest evidence first, up to "
         f"{max_station_sections} sections. The others are rows of the station table.</p>"
     )
-    alarm_by_station = _alarms_by_station(win)
+    alarm_by_station = _alarms_by_station(cx.win)
+    sid = st["station_id"].to_numpy(dtype=object)
     unit_order = np.argsort(sid.astype(str), kind="stable")
     sid_sorted = sid.astype(str)[unit_order]
     for i, s in enumerate(sections):
         lo, hi = np.searchsorted(sid_sorted, s, "left"), np.searchsorted(sid_sorted, s, "right")
         units = np.sort(unit_order[lo:hi]).astype(np.int64)
-        data, rows = _station_panel(
-            s,
-            units,
-            st,
-            jr,
-            alarm_by_station.get(s, np.array([], dtype="datetime64[us]")),
-            level,
-            outlier_weight,
-            min_trend_rows,
-        )
-        pg.add(f'<h3 id="sec{i}">{esc(s)}</h3>')
-        flags = sorted({f for u in units for f in str(st["flags"].iloc[u]).split(";") if f})
-        if flags:
-            items = "".join(
-                f'<li><span class="flag">{esc(f)}</span>: {esc(_FLAG_TEXT.get(f, ""))}</li>'
-                for f in flags
-            )
-            pg.add(f"<ul>{items}</ul>")
-        else:
-            pg.add('<p class="muted">No flags; shown for its weight share.</p>')
-        pg.add(_station_rows(st, links, units, level, compact=True))
-        pg.figure(station_figure(data), f"station {s}: offsets, residuals and trends")
-        out_rows = rows[data.outlier]
-        if out_rows.shape[0] and max_outliers_listed:
-            zabs = np.abs(jr.z[out_rows])
-            key = np.where(np.isfinite(zabs), zabs, np.abs(jr.residual[out_rows]))
-            pick = out_rows[np.argsort(-key, kind="stable")][:max_outliers_listed]
-            codes = jr.event[pick]
-            referenced.update(int(c) for c in codes)
-            pg.add(
-                f"<p>Outlier readings: {out_rows.shape[0]} (robust weight below "
-                f"{outlier_weight:g}); the {pick.shape[0]} largest:</p>"
-            )
-            pg.add(
-                table(
-                    [
-                        ("event", _event_links(codes, ev_ids), True),
-                        ("origin time (UTC)", _times(ev, codes), True),
-                        ("network magnitude", fmt(jr.event_magnitude[pick], ".2f"), False),
-                        ("residual", fmt(jr.residual[pick], "+.2f"), False),
-                        ("z", fmt(jr.z[pick], "+.1f"), False),
-                        ("robust weight", fmt(jr.robust_weight[pick], ".2f"), False),
-                        ("distance (km)", fmt(jr.distance_km[pick], ".0f"), False),
-                    ]
-                )
-            )
+        alarms = alarm_by_station.get(s, np.array([], dtype="datetime64[us]"))
+        _station_section(cx, i, s, units, links, alarms, max_outliers_listed)
 
-    # 5. pairs ---------------------------------------------------------------------------
+
+def _station_section(
+    cx: _Context,
+    i: int,
+    s: str,
+    units: NDArray[np.int64],
+    links: NDArray[np.object_],
+    alarms: NDArray[np.datetime64],
+    max_outliers_listed: int,
+) -> None:
+    """One station section: flags explained, its units' rows, the panels, outlier readings."""
+    pg, st, jr, outlier_weight = cx.pg, cx.st, cx.jr, cx.outlier_weight
+    data, rows = _station_panel(
+        s, units, st, jr, alarms, cx.level, outlier_weight, cx.min_trend_rows
+    )
+    pg.add(f'<h3 id="sec{i}">{esc(s)}</h3>')
+    flags = sorted({f for u in units for f in str(st["flags"].iloc[u]).split(";") if f})
+    if flags:
+        items = "".join(
+            f'<li><span class="flag">{esc(f)}</span>: {esc(_FLAG_TEXT.get(f, ""))}</li>'
+            for f in flags
+        )
+        pg.add(f"<ul>{items}</ul>")
+    else:
+        pg.add('<p class="muted">No flags; shown for its weight share.</p>')
+    pg.add(_station_rows(st, links, units, cx.level, compact=True))
+    pg.figure(station_figure(data), f"station {s}: offsets, residuals and trends")
+    out_rows = rows[data.outlier]
+    if not (out_rows.shape[0] and max_outliers_listed):
+        return
+    zabs = np.abs(jr.z[out_rows])
+    key = np.where(np.isfinite(zabs), zabs, np.abs(jr.residual[out_rows]))
+    pick = out_rows[np.argsort(-key, kind="stable")][:max_outliers_listed]
+    codes = jr.event[pick]
+    cx.referenced.update(int(c) for c in codes)
+    pg.add(
+        f"<p>Outlier readings: {out_rows.shape[0]} (robust weight below "
+        f"{outlier_weight:g}); the {pick.shape[0]} largest:</p>"
+    )
+    pg.add(
+        table(
+            [
+                ("event", _event_links(codes, cx.ev_ids), True),
+                ("origin time (UTC)", _times(cx.ev, codes), True),
+                ("network magnitude", fmt(jr.event_magnitude[pick], ".2f"), False),
+                ("residual", fmt(jr.residual[pick], "+.2f"), False),
+                ("z", fmt(jr.z[pick], "+.1f"), False),
+                ("robust weight", fmt(jr.robust_weight[pick], ".2f"), False),
+                ("distance (km)", fmt(jr.distance_km[pick], ".0f"), False),
+            ]
+        )
+    )
+
+
+def _pairs_part(cx: _Context, max_pairs_listed: int) -> None:
+    """5. Correlated pairs: the table (flagged first) and the map of flagged pairs."""
+    pg, win, st = cx.pg, cx.win, cx.st
     pg.add('<h2 id="pairs">Correlated pairs</h2>')
     pairs = win.pairs
-    if len(pairs):
-        flagged = as_bool(pairs["flagged"], "pairs", "flagged")
-        pv = (
-            pd.to_numeric(pairs["p_value"]).to_numpy(dtype=float)
-            if "p_value" in pairs.columns
-            else np.zeros(len(pairs))
-        )
-        porder = np.lexsort((np.nan_to_num(pv, nan=2.0), ~flagged))[:max_pairs_listed]
-        pg.add(
-            f"<p>{int(flagged.sum())} flagged of {len(pairs)} tested pairs; intervals of ρ̂ "
-            "as given by the pair test.</p>"
-        )
-        pg.add(_pair_rows(pairs, porder))
-        if win.coordinates is not None and len(win.coordinates) and flagged.any():
-            fl = pairs[flagged]
-            pg.figure(
-                pair_map_figure(
-                    win.coordinates,
-                    _station_of(fl["station_k"], st),
-                    _station_of(fl["station_l"], st),
-                    pd.to_numeric(fl["rho_hat"]).to_numpy(dtype=float),
-                ),
-                "map of stations and correlated pairs",
-                "Plain longitude-latitude axes, no basemap.",
-            )
-        elif flagged.any():
-            pg.add('<p class="muted">No station coordinates given: no map.</p>')
-    else:
+    if not len(pairs):
         pg.add("<p>No pair test results were given.</p>")
-
-    # 6. drift alarms --------------------------------------------------------------------
-    pg.add('<h2 id="drift">Drift alarms</h2>')
-    pg.add(_drift_rows(win))
-
-    # 7. referenced events ---------------------------------------------------------------
-    pg.add('<h2 id="events">Events referred to in this report</h2>')
-    if referenced:
-        codes = np.array(sorted(referenced), dtype=np.int64)
-        pg.add(
-            table(
-                [
-                    ("event", np.array([esc(x) for x in ev_ids[codes]], dtype=object), True),
-                    ("origin time (UTC)", _times(ev, codes), True),
-                    (
-                        "network",
-                        fmt(pd.to_numeric(ev["magnitude"]).to_numpy()[codes], ".2f"),
-                        False,
-                    ),
-                    ("SE", fmt(pd.to_numeric(ev["se"]).to_numpy()[codes], ".2f"), False),
-                    (
-                        "plain mean",
-                        fmt(pd.to_numeric(ev["plain_mean"]).to_numpy()[codes], ".2f"),
-                        False,
-                    ),
-                    (
-                        "stations",
-                        fmt(pd.to_numeric(ev["n_stations"]).to_numpy()[codes], ".0f"),
-                        False,
-                    ),
-                    ("flags", _text_col(ev, "flags", codes), True),
-                ],
-                row_ids=[f"ev{c}" for c in codes.tolist()],
-            )
+        return
+    flagged = as_bool(pairs["flagged"], "pairs", "flagged")
+    pv = (
+        pd.to_numeric(pairs["p_value"]).to_numpy(dtype=float)
+        if "p_value" in pairs.columns
+        else np.zeros(len(pairs))
+    )
+    porder = np.lexsort((np.nan_to_num(pv, nan=2.0), ~flagged))[:max_pairs_listed]
+    pg.add(
+        f"<p>{int(flagged.sum())} flagged of {len(pairs)} tested pairs; intervals of ρ̂ "
+        "as given by the pair test.</p>"
+    )
+    pg.add(_pair_rows(pairs, porder))
+    if win.coordinates is not None and len(win.coordinates) and flagged.any():
+        fl = pairs[flagged]
+        pg.figure(
+            pair_map_figure(
+                win.coordinates,
+                _station_of(fl["station_k"], st),
+                _station_of(fl["station_l"], st),
+                pd.to_numeric(fl["rho_hat"]).to_numpy(dtype=float),
+            ),
+            "map of stations and correlated pairs",
+            "Plain longitude-latitude axes, no basemap.",
         )
-    else:
-        pg.add("<p>None.</p>")
+    elif flagged.any():
+        pg.add('<p class="muted">No station coordinates given: no map.</p>')
 
-    # 8. notes ---------------------------------------------------------------------------
+
+def _events_part(cx: _Context) -> None:
+    """7. The events referred to above (link targets)."""
+    pg, ev = cx.pg, cx.ev
+    pg.add('<h2 id="events">Events referred to in this report</h2>')
+    if not cx.referenced:
+        pg.add("<p>None.</p>")
+        return
+    codes = np.array(sorted(cx.referenced), dtype=np.int64)
+    pg.add(
+        table(
+            [
+                ("event", np.array([esc(x) for x in cx.ev_ids[codes]], dtype=object), True),
+                ("origin time (UTC)", _times(ev, codes), True),
+                (
+                    "network",
+                    fmt(pd.to_numeric(ev["magnitude"]).to_numpy()[codes], ".2f"),
+                    False,
+                ),
+                ("SE", fmt(pd.to_numeric(ev["se"]).to_numpy()[codes], ".2f"), False),
+                (
+                    "plain mean",
+                    fmt(pd.to_numeric(ev["plain_mean"]).to_numpy()[codes], ".2f"),
+                    False,
+                ),
+                (
+                    "stations",
+                    fmt(pd.to_numeric(ev["n_stations"]).to_numpy()[codes], ".0f"),
+                    False,
+                ),
+                ("flags", _text_col(ev, "flags", codes), True),
+            ],
+            row_ids=[f"ev{c}" for c in codes.tolist()],
+        )
+    )
+
+
+def _notes_part(
+    cx: _Context,
+    trend_t: float,
+    min_trend_rows: int,
+    outlier_weight: float,
+    outlier_rate_alert: float,
+) -> None:
+    """8. Notes: how every number and flag is defined, and the closing caution."""
+    st = cx.st
     n_dist = st["distance_n"].to_numpy()[np.isfinite(st["distance_t"].to_numpy(dtype=float))]
     n_mag = st["magnitude_n"].to_numpy()[np.isfinite(st["magnitude_t"].to_numpy(dtype=float))]
-    pg.add('<h2 id="notes">Notes</h2>')
-    pg.add(
+    cx.pg.add('<h2 id="notes">Notes</h2>')
+    cx.pg.add(
         _notes(
-            level,
+            cx.level,
             trend_t,
             min_trend_rows,
             outlier_weight,
@@ -613,21 +740,7 @@ def write_station_report(
             chance_flag_rate(n_dist, trend_t) + chance_flag_rate(n_mag, trend_t),
         )
     )
-    pg.add(f'<p class="caution">{esc(ADVISORY)}</p>')
-    t_fig = time.perf_counter() - t1
-
-    t2 = time.perf_counter()
-    html_path.write_text(page(title, "\n".join(pg.parts)), encoding="utf-8")
-    return ReportFiles(
-        html=html_path,
-        station_csv=csv_path,
-        station_parquet=pq_path,
-        n_figures=pg.n_figures,
-        section_stations=tuple(sections),
-        n_units=len(st),
-        n_events=n_events,
-        seconds={"tables": t_tables, "figures": t_fig, "html": time.perf_counter() - t2},
-    )
+    cx.pg.add(f'<p class="caution">{esc(ADVISORY)}</p>')
 
 
 # -- table helpers -----------------------------------------------------------------------------
@@ -778,7 +891,7 @@ def _drift_rows(inputs: ReportInputs) -> str:
 
 
 def _censoring_text(ev: pd.DataFrame) -> str:
-    """One paragraph on the use of non-detections (see ``fusion.workflows.dry_run``)."""
+    """One paragraph on the use of non-detections (:mod:`fusion.network.summaries`)."""
     if not len(ev):
         return ""
     c = censoring_summary(ev)

@@ -28,6 +28,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from fusion.network.summaries import censoring_summary
 from fusion.workflows.fusing import fuse_with_version, resolve_version
 from fusion.workflows.learning import _latest_origin, load_window
 from stations.errors import ModelNotFoundError
@@ -176,55 +177,6 @@ class DryRunReport:
                     f"({e['change']:+.3f})  {e['reason']}"
                 )
         return "\n".join(lines)
-
-
-def censoring_summary(events: pd.DataFrame) -> dict[str, Any]:
-    """Use of non-detections in an event table (:class:`FusedMagnitudes` ``events``).
-
-    Returns
-    -------
-    dict
-        ``n_events`` (with a magnitude), ``n_used`` (events re-estimated with non-detections
-        or clipped readings, method ``censored_ml``), ``n_nondetections`` (non-detections they
-        used), ``shift`` (n, mean, median, max_abs, n_ge_0_1 = events moved by 0.1 or more, and
-        quantiles 5 / 25 / 50 / 75 / 95 % of censored − GLS magnitude, magnitude units),
-        ``n_uncorrected`` (flag ``censoring-uncorrected``) and ``n_likely_biased_high``.
-    """
-    mag = pd.to_numeric(events["magnitude"]).to_numpy(dtype=float)
-    has = np.isfinite(mag)
-    method = events["method"].astype(str).to_numpy() if "method" in events else None
-    used = has & (method == "censored_ml") if method is not None else np.zeros_like(has)
-    flags = events["flags"].fillna("").astype(str) if "flags" in events else None
-
-    def flagged(name: str) -> int:
-        if flags is None:
-            return 0
-        hit = flags.str.contains(f"(?:^|;){name}(?:;|$)", regex=True).to_numpy(dtype=bool)
-        return int(np.count_nonzero(hit & has))
-
-    n_nd = 0
-    if "n_nondetections_used" in events:
-        n_nd = int(pd.to_numeric(events["n_nondetections_used"]).to_numpy()[has].sum())
-    shift: dict[str, Any] = {"n": int(np.count_nonzero(used))}
-    if "censoring_shift" in events and np.any(used):
-        v = pd.to_numeric(events["censoring_shift"]).to_numpy(dtype=float)[used]
-        v = v[np.isfinite(v)]
-        if v.shape[0]:
-            shift.update(
-                mean=float(v.mean()),
-                median=float(np.median(v)),
-                max_abs=float(np.abs(v).max()),
-                n_ge_0_1=int(np.count_nonzero(np.abs(v) >= 0.1)),
-                quantiles={str(q): float(np.quantile(v, q)) for q in (0.05, 0.25, 0.5, 0.75, 0.95)},
-            )
-    return {
-        "n_events": int(np.count_nonzero(has)),
-        "n_used": int(np.count_nonzero(used)),
-        "n_nondetections": n_nd,
-        "shift": shift,
-        "n_uncorrected": flagged("censoring-uncorrected"),
-        "n_likely_biased_high": flagged("likely-biased-high"),
-    }
 
 
 def _censoring_lines(cens: dict[str, Any]) -> list[str]:

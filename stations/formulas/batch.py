@@ -378,7 +378,6 @@ def compute_station_magnitudes(
             f"compute_station_magnitudes: column {missing[0]!r} is missing; the frame must hold "
             "the record-schema columns (stations.schema.INPUT_COLUMNS)"
         )
-    n = len(frame)
     geometry = _fill_geometry(frame, metadata, options)
     columns = {name: _floats(frame, name) for name in _FORMULA_COLUMNS}
     amplitude = columns["amplitude"]
@@ -386,69 +385,124 @@ def compute_station_magnitudes(
     current = np.where(detected, _floats(frame, "magnitude"), _floats(frame, "noise_threshold"))
     target = ~np.isnan(amplitude) & (np.isnan(current) | options.recompute)
 
-    value = np.full(n, np.nan)
-    label = np.full(n, "", dtype=object)
-    reason = np.full(n, "", dtype=object)
-    computable = np.zeros(n, dtype=bool)
+    ev = _evaluate_groups(frame, target, columns, geometry, options)
+    value, label, reason, computable = ev.value, ev.label, ev.reason, ev.computable
+    in_domain = target & (reason == "")
+    flagged = target & (reason != "") & computable & options.allow_out_of_domain
+    accepted = in_domain | flagged
+    reject = target & ~accepted
+
+    out, n_filled = _with_geometry(frame, geometry)
+    _fill_values(out, frame, value, label, accepted, flagged, detected)
+    rejected = _row_reasons(frame, reject, reason)
+    rejected_rows = frame.loc[reject]
+    text = rejected_rows.to_json(orient="records", lines=True, date_format="iso")
+    # one JSON object per line; ujson escapes newlines inside strings (ASCII output)
+    rejected["raw"] = text.rstrip("\n").split("\n") if len(rejected_rows) else []
+    return ComputeResult(
+        records=out.loc[~reject],
+        rejected=rejected,
+        flagged=_row_reasons(frame, flagged, reason),
+        n_computed=int(np.count_nonzero(accepted)),
+        n_out_of_domain=int(np.count_nonzero(flagged)),
+        n_distances_filled=n_filled,
+    )
+
+
+@dataclass(slots=True, eq=False)
+class _GroupResults:
+    """Per-row results of the formula evaluation (NaN / "" where not evaluated)."""
+
+    value: NDArray[np.float64]
+    label: NDArray[np.object_]
+    reason: NDArray[np.object_]
+    computable: NDArray[np.bool_]
+
+
+def _evaluate_groups(
+    frame: pd.DataFrame,
+    target: NDArray[np.bool_],
+    columns: dict[str, NDArray[np.float64]],
+    geometry: _Geometry,
+    options: ComputeOptions,
+) -> _GroupResults:
+    """Evaluate the formula of every (magnitude type, amplitude unit) group of target rows."""
+    n = len(frame)
+    res = _GroupResults(
+        value=np.full(n, np.nan),
+        label=np.full(n, "", dtype=object),
+        reason=np.full(n, "", dtype=object),
+        computable=np.zeros(n, dtype=bool),
+    )
     mtype = frame["magnitude_type"].astype(str).to_numpy(dtype=object)
     unit = frame["amplitude_unit"].astype(object).where(frame["amplitude_unit"].notna(), "")
     unit_arr = unit.astype(str).to_numpy(dtype=object)
     channel = frame["channel"].to_numpy(dtype=object)
     specs = _specs(options)
-
     groups = pd.DataFrame({"t": mtype, "u": unit_arr})[target].groupby(["t", "u"]).indices
     for key, positions in groups.items():
         kind, unit_name = (str(k) for k in key)  # type: ignore[attr-defined]
         rows = np.flatnonzero(target)[positions]
         spec = specs.get(kind)
         if spec is None:
-            reason[rows] = (
+            res.reason[rows] = (
                 f"no amplitude formula for magnitude type {kind} in magfuse (formulas: "
                 f"{', '.join(specs)}); supply the station magnitude itself"
             )
             continue
         if unit_name == "":
-            reason[rows] = (
+            res.reason[rows] = (
                 f"{kind}: amplitude_unit is missing; give the unit of the amplitude ({_ALL_UNITS})"
             )
             continue
         try:
             evaluation = spec.evaluate(columns, rows, unit_name, geometry)
         except (UnitError, ConfigError) as exc:
-            reason[rows] = str(exc)
+            res.reason[rows] = str(exc)
             continue
-        why = evaluation.reason.copy()
-        lacking = np.isnan(getattr(geometry, spec.distance)[rows])
-        station_problem = geometry.station_problem[rows][lacking].astype(str)
-        why[lacking] = np.where(
-            station_problem != "",
-            f"{spec.distance_name} is missing: " + station_problem,
-            f"{spec.distance_name} is missing: {spec.distance_text}",
-        )
-        if options.check_component:
-            wrong = _wrong_component(channel[rows], spec.vertical) & (why == "")
-            side, need = (
-                ("horizontal", "the vertical") if spec.vertical else ("vertical", "horizontal")
-            )
-            why[wrong] = (
-                "channel "
-                + pd.Series(channel[rows][wrong], dtype=object).astype(str)
-                + f" is {side}; {kind} is defined on {need} components"
-            ).to_numpy(dtype=object)
-        ok = evaluation.computable
-        value[rows] = evaluation.magnitude
-        label[rows] = evaluation.formula
-        computable[rows] = ok
-        bad = why != ""
-        fix = np.where(ok[bad], _FIX_DOMAIN, "; fix or complete the row").astype(object)
-        fix[lacking[bad]] = ""  # the distance text carries its own fix
-        reason[rows[bad]] = evaluation.formula + ": " + why[bad] + fix
+        _store_group(res, rows, kind, spec, evaluation, geometry, channel[rows], options)
+    return res
 
-    in_domain = target & (reason == "")
-    flagged = target & (reason != "") & computable & options.allow_out_of_domain
-    accepted = in_domain | flagged
-    reject = target & ~accepted
 
+def _store_group(
+    res: _GroupResults,
+    rows: NDArray[np.int64],
+    kind: str,
+    spec: _Spec,
+    evaluation: Evaluation,
+    geometry: _Geometry,
+    channel: NDArray[np.object_],
+    options: ComputeOptions,
+) -> None:
+    """Store one group's magnitudes and the reason of each row that is not in the domain."""
+    why = evaluation.reason.copy()
+    lacking = np.isnan(getattr(geometry, spec.distance)[rows])
+    station_problem = geometry.station_problem[rows][lacking].astype(str)
+    why[lacking] = np.where(
+        station_problem != "",
+        f"{spec.distance_name} is missing: " + station_problem,
+        f"{spec.distance_name} is missing: {spec.distance_text}",
+    )
+    if options.check_component:
+        wrong = _wrong_component(channel, spec.vertical) & (why == "")
+        side, need = ("horizontal", "the vertical") if spec.vertical else ("vertical", "horizontal")
+        why[wrong] = (
+            "channel "
+            + pd.Series(channel[wrong], dtype=object).astype(str)
+            + f" is {side}; {kind} is defined on {need} components"
+        ).to_numpy(dtype=object)
+    ok = evaluation.computable
+    res.value[rows] = evaluation.magnitude
+    res.label[rows] = evaluation.formula
+    res.computable[rows] = ok
+    bad = why != ""
+    fix = np.where(ok[bad], _FIX_DOMAIN, "; fix or complete the row").astype(object)
+    fix[lacking[bad]] = ""  # the distance text carries its own fix
+    res.reason[rows[bad]] = evaluation.formula + ": " + why[bad] + fix
+
+
+def _with_geometry(frame: pd.DataFrame, geometry: _Geometry) -> tuple[pd.DataFrame, int]:
+    """A copy of ``frame`` with the filled distances and azimuths; rows that gained one."""
     out = frame.copy()
     for column, filled in (
         ("distance_km", geometry.distance_km),
@@ -464,8 +518,19 @@ def compute_station_magnitudes(
     after = np.column_stack(
         [geometry.distance_km, geometry.distance_deg, geometry.hypocentral_km, geometry.azimuth]
     )
-    n_filled = int(np.count_nonzero((np.isnan(before) & ~np.isnan(after)).any(axis=1)))
+    return out, int(np.count_nonzero((np.isnan(before) & ~np.isnan(after)).any(axis=1)))
 
+
+def _fill_values(
+    out: pd.DataFrame,
+    frame: pd.DataFrame,
+    value: NDArray[np.float64],
+    label: NDArray[np.object_],
+    accepted: NDArray[np.bool_],
+    flagged: NDArray[np.bool_],
+    detected: NDArray[np.bool_],
+) -> None:
+    """Write the accepted magnitudes, thresholds and formula labels into ``out``."""
     magnitude = _floats(frame, "magnitude")
     threshold = _floats(frame, "noise_threshold")
     magnitude[accepted & detected] = value[accepted & detected]
@@ -478,17 +543,3 @@ def compute_station_magnitudes(
     formula_col = pd.Series(formula, index=out.index, dtype=object).where(pd.notna(formula), None)
     keep_dtype = pd.api.types.is_string_dtype(frame["formula"].dtype)
     out["formula"] = formula_col.astype(frame["formula"].dtype) if keep_dtype else formula_col
-
-    rejected = _row_reasons(frame, reject, reason)
-    rejected_rows = frame.loc[reject]
-    text = rejected_rows.to_json(orient="records", lines=True, date_format="iso")
-    # one JSON object per line; ujson escapes newlines inside strings (ASCII output)
-    rejected["raw"] = text.rstrip("\n").split("\n") if len(rejected_rows) else []
-    return ComputeResult(
-        records=out.loc[~reject],
-        rejected=rejected,
-        flagged=_row_reasons(frame, flagged, reason),
-        n_computed=int(np.count_nonzero(accepted)),
-        n_out_of_domain=int(np.count_nonzero(flagged)),
-        n_distances_filled=n_filled,
-    )

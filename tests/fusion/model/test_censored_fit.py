@@ -34,12 +34,12 @@ from scipy import integrate, stats
 from fusion.model.anchors import Anchor, AnchorKind, ReferenceEvents
 from fusion.model.censored_fit import (
     CensoredStationFit,
-    NondetectionMode,
     censoring_rows,
     fit_censored_stations,
     loo_predictor,
     nondetection_moments,
 )
+from fusion.model.nondetection_modes import NondetectionMode
 from fusion.model.parameters import StationParameters
 from fusion.model.reml_em import RemlEmFit, fit_reml_em
 from fusion.model.simulation import (
@@ -52,9 +52,9 @@ from fusion.model.station_model import StationModel
 from fusion.network.censoring import CensoredEventData, fit_censored
 from fusion.network.gls_blocks import PairCovariance
 from fusion.network.network_magnitude import fuse_events
+from fusion.network.summaries import censoring_summary
 from fusion.observations import ObservationSet
 from fusion.settings import CensoringConfig, EpochConfig, LearnConfig, PairConfig
-from fusion.workflows.dry_run import censoring_summary
 from stations.errors import ConfigError, ConvergenceWarning, InsufficientDataError
 from tests.reference import network as ref
 

@@ -31,7 +31,7 @@ from numpy.typing import NDArray
 from scipy import special, stats
 
 from fusion.model.anchors import Anchor
-from fusion.model.censored_fit import NondetectionMode, refit_with_nondetections
+from fusion.model.nondetection_modes import NondetectionMode, refit_with_nondetections
 from fusion.model.parameters import StationParameters
 from fusion.model.reml_em import RemlEmFit, fit_reml_em
 from fusion.model.simulation import (

@@ -12,9 +12,10 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
+from fusion.model.diagnostics import sigma_interval
 from fusion.report import STATION_REPORT_SCHEMA, ReportInputs, station_reliability_table
 from fusion.report.joined import apply_window
-from fusion.report.station_table import sigma_interval, write_station_table
+from fusion.report.station_table import write_station_table
 from stations.errors import ConfigError, DomainError, SchemaError
 from stations.schema import check_schema
 

@@ -1,4 +1,4 @@
-"""Grouped weighted residual trends (fusion.report.trends) against statsmodels and real data."""
+"""Grouped weighted residual trends (fusion.model.diagnostics) against statsmodels and real data."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from fusion.report.trends import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
+from fusion.model.diagnostics import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
 from tests.datasets import YELLOWSTONE
 
 DATA = YELLOWSTONE
@@ -116,3 +116,20 @@ def test_yellowstone_station_trends_match_statsmodels() -> None:
         assert res.t[k] == pytest.approx(t, rel=1e-8)
         checked += 1
     assert checked >= 15  # 20 stations in the file, nearly all with >= 20 readings
+
+
+def test_unit_usage_counts_shares_and_outliers_by_hand() -> None:
+    from fusion.model.diagnostics import unit_usage
+
+    # Two events with a magnitude; unit 0 reads twice (weights 0.6, 0.5; one outlier at
+    # ω = 0.1), unit 1 once (weight 0.4, ω = 1), an unknown station (−1) once with weight 0.5.
+    unit = np.array([0, 1, 0, -1])
+    detected = np.array([True, True, True, True])
+    weight = np.array([0.6, 0.4, 0.5, 0.5])
+    robust = np.array([1.0, 1.0, 0.1, 1.0])
+    u = unit_usage(unit, detected, weight, robust, 3, 2, outlier_weight=0.3)
+    np.testing.assert_array_equal(u.n_readings, [2, 1, 0])
+    np.testing.assert_allclose(u.weight_share[:2], [1.1 / 2, 0.4 / 2])
+    np.testing.assert_allclose(u.mean_weight[:2], [1.1 / 2, 0.4])
+    np.testing.assert_allclose(u.outlier_rate[:2], [0.5, 0.0])
+    assert np.isnan(u.mean_weight[2]) and np.isnan(u.outlier_rate[2])
