@@ -24,6 +24,7 @@ import contextlib
 import hashlib
 import json
 import os
+import re
 import shutil
 import tempfile
 from collections.abc import Callable, Iterator, Mapping
@@ -38,17 +39,59 @@ import pandas as pd
 
 from fusion.model.parameters import StationParameters
 from fusion.network.gls_blocks import PairCovariance
-from stations.errors import ModelNotFoundError, StoreCorruptError
+from stations.errors import ConfigError, ModelNotFoundError, StoreCorruptError
+from stations.schema import MagnitudeType, normalise_magnitude_type
 from stations.store.atomic import fsync_dir, write_bytes_atomic
 
 __all__ = [
     "ModelRegistry",
     "ModelVersion",
+    "check_magnitude_type",
+    "check_version_id",
     "parameters_from_frames",
     "parameters_to_frames",
 ]
 
 _ACTIVE = "active.json"
+
+#: A version id: ``<magnitude type>-<YYYYMMDD>T<HHMMSS>Z-<8 hex digits>`` (see ``save``).
+_VERSION_ID = re.compile(
+    r"^(?P<type>" + "|".join(re.escape(m.value) for m in MagnitudeType) + r")"
+    r"-\d{8}T\d{6}Z-[0-9a-f]{8}$"
+)
+
+
+def check_magnitude_type(magnitude_type: str) -> str:
+    """The canonical magnitude type, checked before it becomes a folder name.
+
+    Raises
+    ------
+    ConfigError
+        If ``magnitude_type`` is not a known type or alias (so a value such as ``../x``
+        never reaches a path).
+    """
+    try:
+        return normalise_magnitude_type(str(magnitude_type)).value
+    except ValueError as exc:
+        raise ConfigError(f"--type: {exc}") from None
+
+
+def check_version_id(version_id: str) -> str:
+    """Return ``version_id`` if it matches the version-id pattern, before it touches a path.
+
+    Raises
+    ------
+    ModelNotFoundError
+        If it is not ``TYPE-YYYYMMDDTHHMMSSZ-hash`` with a known magnitude type (e.g.
+        ``../../outside/x-y``); the message says how to list the versions.
+    """
+    if not isinstance(version_id, str) or not _VERSION_ID.match(version_id):
+        raise ModelNotFoundError(
+            f"model version {version_id!r} is not a version id "
+            "(TYPE-YYYYMMDDTHHMMSSZ-hash with a known magnitude type); list them with "
+            "'magfuse models'"
+        )
+    return version_id
 
 
 @dataclass(frozen=True, slots=True)
@@ -163,17 +206,13 @@ class ModelRegistry:
                 yield
 
     def _type_dir(self, magnitude_type: str) -> Path:
-        return self.root / magnitude_type
+        return self.root / check_magnitude_type(magnitude_type)
 
     @staticmethod
     def _type_of(version_id: str) -> str:
-        head, sep, _ = version_id.partition("-")
-        if not sep:
-            raise ModelNotFoundError(
-                f"model version {version_id!r} is not a version id "
-                "(TYPE-YYYYMMDDTHHMMSSZ-hash); list them with 'magfuse models'"
-            )
-        return head
+        match = _VERSION_ID.match(check_version_id(version_id))
+        assert match is not None  # checked above
+        return match.group("type")
 
     # -- writing ---------------------------------------------------------------------------
     def save(
@@ -311,10 +350,11 @@ class ModelRegistry:
 
     def versions(self, magnitude_type: str | None = None) -> list[ModelVersion]:
         """All stored versions (optionally of one type), oldest first."""
+        known = {m.value for m in MagnitudeType}
         types = (
-            [magnitude_type]
+            [check_magnitude_type(magnitude_type)]
             if magnitude_type
-            else sorted(p.name for p in self.root.glob("*") if p.is_dir())
+            else sorted(p.name for p in self.root.glob("*") if p.is_dir() and p.name in known)
         )
         out: list[ModelVersion] = []
         for mtype in types:

@@ -1,0 +1,53 @@
+"""Command-line behaviour that keeps the store exactly what it was given (issue 10, store cases).
+
+Ids and magnitude types are checked before they touch a path; damaged files are named; a store
+folder that links out of the store is refused.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from tests.cli.conftest import demo_slice, invoke
+
+
+@pytest.fixture(scope="module")
+def small_store(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Two weeks of the demo ingested into a fresh store."""
+    base = tmp_path_factory.mktemp("small")
+    csv = demo_slice(base / "demo.csv", end="2025-01-15")
+    root = base / "store"
+    res = invoke("ingest", csv, "--store", root)
+    assert res.exit_code == 0, res.stderr
+    return root
+
+
+def _one_error_line(stderr: str) -> str:
+    errors = [line for line in stderr.splitlines() if line.startswith("Error:")]
+    assert len(errors) == 1, stderr
+    assert "Traceback" not in stderr
+    return errors[0]
+
+
+def test_adopt_of_a_path_like_version_id_is_refused_before_any_write(
+    small_store: Path, tmp_path: Path
+) -> None:
+    outside = small_store.parent / "outside"
+    res = invoke("adopt", "../../outside/x-y", "--store", small_store)
+    assert res.exit_code == 1
+    assert "not a version id" in _one_error_line(res.stderr)
+    assert not outside.exists()
+    assert not (small_store / "models").exists()
+
+
+@pytest.mark.parametrize("command", ["rollback", "models"])
+def test_type_option_naming_a_path_is_refused(small_store: Path, command: str) -> None:
+    outside = small_store.parent / "elsewhere"
+    (outside / "versions").mkdir(parents=True, exist_ok=True)
+    (outside / "active.json").write_text('{"version": "ML-x", "history": ["ML-y"]}')
+    res = invoke(command, "--type", "../../elsewhere", "--store", small_store)
+    assert res.exit_code == 1
+    assert "unknown magnitude type" in _one_error_line(res.stderr)
+    assert (outside / "active.json").read_text() == '{"version": "ML-x", "history": ["ML-y"]}'
