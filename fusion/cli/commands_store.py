@@ -64,6 +64,8 @@ def _report_line(path: Path, outcome: IngestOutcome) -> str:
     report = outcome.report
     if report.same_content_as is not None:
         return f"{path}: same content as batch {report.same_content_as}; nothing added"
+    if report.no_rows:
+        return f"{path}: no rows (only a header?); nothing added, no batch created"
     computed = f", {outcome.computed} magnitudes computed" if outcome.computed else ""
     return (
         f"{path}: {report.accepted} accepted ({report.revised} revised), "

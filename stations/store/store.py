@@ -91,6 +91,8 @@ class IngestReport:
         Set when a committed batch had the same ``content_hash``: nothing was written, all
         records count as duplicates (their rejected rows are already quarantined with that
         batch).
+    no_rows : bool
+        True when the file held no rows at all (e.g. only a header): no batch is created.
     """
 
     source_file: str
@@ -100,6 +102,7 @@ class IngestReport:
     revised: int
     quarantined: int
     same_content_as: str | None = None
+    no_rows: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         """Plain dict of the fields."""
@@ -589,6 +592,8 @@ class StationMagnitudeStore:
         """
         table = records_table(records, source_file)
         rejected_rows = rejected_table(rejected, source_file)
+        if table.num_rows == 0 and rejected_rows.num_rows == 0:
+            return IngestReport(source_file, None, 0, 0, 0, 0, no_rows=True)
         kept, screened = screen(table)
         collapsed = collapse(kept)
         with self._lock.hold(on_wait):

@@ -51,3 +51,20 @@ def test_type_option_naming_a_path_is_refused(small_store: Path, command: str) -
     assert res.exit_code == 1
     assert "unknown magnitude type" in _one_error_line(res.stderr)
     assert (outside / "active.json").read_text() == '{"version": "ML-x", "history": ["ML-y"]}'
+
+
+def test_header_only_file_creates_no_batch(tmp_path: Path) -> None:
+    header = (Path(__file__).parents[2] / "sample_events" / "demo_network_2025.csv").open(
+        encoding="utf-8"
+    )
+    with header:
+        first = header.readline()
+    path = tmp_path / "header_only.csv"
+    path.write_text(first, encoding="utf-8")
+    root = tmp_path / "store"
+    res = invoke("ingest", path, "--store", root)
+    assert res.exit_code == 0, res.stderr
+    assert "no rows" in res.stdout
+    from stations.store import StationMagnitudeStore
+
+    assert StationMagnitudeStore.open(root).summary().batches == 0
