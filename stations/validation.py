@@ -52,7 +52,8 @@ Rules (each failing rule adds one sentence to the row's ``reason``)
 * ranges: latitude [-90, 90], longitude [-180, 180], depth below 800 km (no earthquake is known
   deeper than about 700 km: common practice, no source; a larger value is almost always a depth
   in metres), distances >= 0, distance_deg <= 180, azimuth [0, 360], period > 0, source weight
-  >= 0; an infinite value is never accepted.
+  >= 0; an infinite value is never accepted;
+* the origin time lies between :data:`EARLIEST_ORIGIN` (1900) and one day after now (UTC).
 
 The loop runs over rules (about twenty), never over rows: numbers are numpy masks, text goes
 through ``pyarrow.compute`` kernels, and station ids, magnitude types and units are checked once
@@ -65,6 +66,7 @@ from __future__ import annotations
 import json
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from typing import Any, Final
 
 import numpy as np
@@ -247,6 +249,21 @@ def _bool(frame: pd.DataFrame, name: str, n: int, default: bool) -> NDArray[np.b
     if col.dtype == bool:
         return col.to_numpy(dtype=bool)
     return col.astype(object).where(col.notna(), default).to_numpy(dtype=bool)
+
+
+#: Earliest origin time accepted (UTC): instrumental station magnitudes begin in the 20th
+#: century (common practice, no source); an earlier date is almost always a typing error.
+EARLIEST_ORIGIN: Final = "1900-01-01T00:00:00"
+
+
+def plausible_origin_range() -> tuple[np.datetime64, np.datetime64]:
+    """Accepted origin times: from :data:`EARLIEST_ORIGIN` to one day after now (UTC).
+
+    A day of slack allows for clocks and time zones that are a little off; a later origin
+    time (e.g. the year 9999) is a typing error, not a future event.
+    """
+    now = np.datetime64(datetime.now(UTC).replace(tzinfo=None), "us")
+    return np.datetime64(EARLIEST_ORIGIN, "us"), now + np.timedelta64(1, "D")
 
 
 def _utc_times(frame: pd.DataFrame, n: int) -> NDArray[np.datetime64]:
@@ -558,6 +575,15 @@ def validate_records(
     reasons.add(
         np.isnat(times),
         "origin time missing or not an ISO 8601 time; give e.g. 2024-05-01T12:00:00Z",
+    )
+    earliest, latest = plausible_origin_range()
+    implausible = ~np.isnat(times) & ((times < earliest) | (times > latest))
+    reasons.add_each(
+        implausible,
+        times,
+        f"origin time {{}} is outside {EARLIEST_ORIGIN[:4]} .. one day from now (UTC); "
+        "correct the date (a typing error in the year?)",
+        lambda t: f"{np.datetime_as_string(np.datetime64(t, 's'))}Z",
     )
     station_id = _station_ids(frame, n, reasons)
     channel = pc.utf8_upper(_text(frame, "channel", n))
