@@ -58,6 +58,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import os
 import secrets
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import AbstractContextManager
@@ -77,6 +78,7 @@ from stations.errors import ConfigError, SchemaError, StoreCorruptError
 from stations.schema import check_schema, normalise_magnitude_type
 from stations.store.atomic import ensure_dir, write_bytes_atomic
 from stations.store.layout import TMP_SUFFIX, new_batch_id
+from stations.store.links import inside
 from stations.store.reading import candidate_row_groups
 
 if TYPE_CHECKING:
@@ -639,16 +641,19 @@ class FusedStore:
         Commits the manifest without the retired list if it had one, and returns it.
         """
         keep = m.listed_names() - {Path(p).name for p in m.retired}
+        real_root = Path(os.path.realpath(self.store_root))
         for path in m.retired:
+            if not inside(self.store_root / path, real_root):
+                continue  # never delete through a link out of the store (stations.store.links)
             with contextlib.suppress(FileNotFoundError):
                 (self.store_root / path).unlink()
-        if self.root.is_dir():
+        if self.root.is_dir() and inside(self.root, real_root):
             for folder in self.root.iterdir():
-                if not folder.is_dir():
+                if not folder.is_dir() or not inside(folder, real_root):
                     continue
                 for f in folder.iterdir():
                     ours = f.name.endswith((".parquet", ".parquet" + TMP_SUFFIX))
-                    if ours and f.name not in keep:
+                    if ours and f.name not in keep and inside(f, real_root):
                         with contextlib.suppress(FileNotFoundError):
                             f.unlink()
         if not m.retired:

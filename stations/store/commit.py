@@ -29,6 +29,7 @@ from numpy.typing import NDArray
 
 from stations.schema import QUARANTINE_SCHEMA, RECORD_SCHEMA
 from stations.store.atomic import ensure_dir, write_parquet_atomic
+from stations.store.links import inside
 from stations.store.layout import (
     OWNED_DIRS,
     data_path,
@@ -313,14 +314,17 @@ def sweep(root: Path, manifest: Manifest) -> list[str]:
     """
     keep = {(p.split("/", 1)[0], p.rsplit("/", 1)[-1]) for p in manifest.referenced_paths()}
     removed: list[str] = []
+    real_root = Path(os.path.realpath(root))
     for top in OWNED_DIRS:
         base = root / top
-        if not base.is_dir():
+        if not base.is_dir() or not inside(base, real_root):
             continue
         for dirpath, _dirs, names in os.walk(base):
             for name in names:
                 if (top, name) not in keep:
                     path = Path(dirpath) / name
+                    if path.is_symlink() or not inside(path, real_root):
+                        continue  # never delete through a link (stations.store.links)
                     path.unlink(missing_ok=True)
                     removed.append(path.relative_to(root).as_posix())
     return removed

@@ -34,6 +34,7 @@ from stations.store.layout import (
     TMP_SUFFIX,
     new_batch_id,
 )
+from stations.store.links import check_no_outside_links
 from stations.store.lock import WriteLock
 from stations.store.manifest import FileEntry, Manifest, load_manifest, save_manifest
 from stations.store.reading import (
@@ -179,7 +180,9 @@ class StationMagnitudeStore:
         ------
         StoreCorruptError
             If ``root`` holds no store and ``create`` is false, if ``root`` is a file, if it is
-            a non-empty folder that is not a store, or if the manifest is unreadable.
+            a non-empty folder that is not a store, if any entry below it is a symbolic link
+            pointing outside the store (:mod:`stations.store.links`), or if the manifest is
+            unreadable.
         SchemaError
             If the store was written with another schema version.
         """
@@ -187,6 +190,7 @@ class StationMagnitudeStore:
         if root.exists() and not root.is_dir():
             raise StoreCorruptError(f"{root}: is a file, not a store folder; pass a folder")
         store = cls(root, lock_timeout_s=lock_timeout_s)
+        check_no_outside_links(root)
         if not (root / MANIFEST_NAME).exists() and create:
             store._create()
         load_manifest(root)  # checks format and schema version

@@ -68,3 +68,31 @@ def test_header_only_file_creates_no_batch(tmp_path: Path) -> None:
     from stations.store import StationMagnitudeStore
 
     assert StationMagnitudeStore.open(root).summary().batches == 0
+
+
+@pytest.mark.parametrize("folder", ["quarantine", "data", "fused/ML"])
+def test_store_folder_linking_outside_is_refused_and_nothing_there_is_deleted(
+    small_store: Path, tmp_path: Path, folder: str
+) -> None:
+    from tests.cli.conftest import copy_store
+
+    root = copy_store(small_store, tmp_path / "store")
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    precious = outside / "20250101T000000000000Z-abcdef.parquet"
+    precious.write_bytes(b"not magfuse's")
+    link = root / folder
+    if link.exists():
+        for p in sorted(link.rglob("*"), reverse=True):
+            (p.rmdir if p.is_dir() else p.unlink)()
+        link.rmdir()
+    link.parent.mkdir(parents=True, exist_ok=True)
+    link.symlink_to(outside, target_is_directory=True)
+    csv = demo_slice(tmp_path / "more.csv", start="2025-01-15", end="2025-01-20")
+    for args in (("ingest", csv), ("fuse",), ("store",)):
+        res = invoke(*args, "--store", root)
+        assert res.exit_code == 1, (args, res.stdout)
+        line = _one_error_line(res.stderr)
+        assert folder in line and "symbolic link" in line
+    assert precious.read_bytes() == b"not magfuse's"
+    assert [p.name for p in outside.iterdir()] == [precious.name]
