@@ -37,10 +37,11 @@ from stations.store.layout import (
     quarantine_path,
 )
 from stations.store.manifest import BatchEntry, FileEntry, Manifest, save_manifest
+from stations.store.checksums import sha256_of
 from stations.store.reading import (
     EVENT_INDEX_SCHEMA,
     SUPERSEDED_SCHEMA,
-    open_checked,
+    read_whole,
 )
 
 __all__ = ["ROW_GROUP_ROWS", "BatchCounts", "commit_batch", "sweep"]
@@ -117,8 +118,12 @@ def _write_data(
     *,
     batch_id: str,
     first_file_no: int,
+    sums: dict[str, str],
 ) -> tuple[list[FileEntry], pa.Table]:
-    """Write one file per partition; return the entries and the new event-index pairs."""
+    """Write one file per partition; return the entries and the new event-index pairs.
+
+    The SHA-256 of each file written goes into ``sums`` (relative path -> digest).
+    """
     entries: list[FileEntry] = []
     pairs: list[pa.Table] = []
     file_no = first_file_no
@@ -129,6 +134,7 @@ def _write_data(
         path = root / rel
         ensure_dir(path.parent, root)
         size = write_parquet_atomic(path, part, RECORD_SCHEMA, row_group_size=ROW_GROUP_ROWS)
+        sums[rel] = sha256_of(path)
         t_range = pc.min_max(part.column("origin_time"))
         e_range = pc.min_max(part.column("event_id"))
         entries.append(
@@ -169,17 +175,23 @@ def _rewrite_index(
     kind: str,
     generation: int,
     sort_keys: list[tuple[str, str]],
+    sums: dict[str, str],
+    old_digest: str | None = None,
 ) -> str:
-    """Write ``old`` index plus ``new_rows``, sorted, as generation ``generation``."""
+    """Write ``old`` index plus ``new_rows``, sorted, as generation ``generation``.
+
+    ``old`` is checked against ``old_digest`` first; the new file's SHA-256 goes into ``sums``.
+    """
     parts = [new_rows]
     if old is not None:
-        parts.insert(0, open_checked(root / old, schema).read())
+        parts.insert(0, read_whole(root / old, schema, digest=old_digest))
     table = pa.concat_tables([p.select(schema.names).cast(schema) for p in parts])
     table = table.take(pc.sort_indices(table, sort_keys=sort_keys))
     rel = index_path(kind, generation)
     path = root / rel
     ensure_dir(path.parent, root)
     write_parquet_atomic(path, table, schema, row_group_size=ROW_GROUP_ROWS)
+    sums[rel] = sha256_of(path)
     return rel
 
 
@@ -216,7 +228,10 @@ def commit_batch(
     full = full.select(RECORD_SCHEMA.names).cast(RECORD_SCHEMA)
     generation = manifest.generation + 1
 
-    entries, pairs = _write_data(root, full, batch_id=batch_id, first_file_no=manifest.next_file_no)
+    sums: dict[str, str] = {}
+    entries, pairs = _write_data(
+        root, full, batch_id=batch_id, first_file_no=manifest.next_file_no, sums=sums
+    )
     _checkpoint("data_written")
 
     q_rel: str | None = None
@@ -229,6 +244,7 @@ def commit_batch(
         q_rel = quarantine_path(batch_id)
         ensure_dir((root / q_rel).parent, root)
         write_parquet_atomic(root / q_rel, q, QUARANTINE_SCHEMA, row_group_size=ROW_GROUP_ROWS)
+        sums[q_rel] = sha256_of(root / q_rel)
         _checkpoint("quarantine_written")
 
     retired: list[str] = []
@@ -242,6 +258,8 @@ def commit_batch(
             "events",
             generation,
             [("event_id", "ascending"), ("file_no", "ascending")],
+            sums,
+            manifest.checksum(manifest.event_index) if manifest.event_index else None,
         )
         if manifest.event_index:
             retired.append(manifest.event_index)
@@ -262,6 +280,8 @@ def commit_batch(
             "superseded",
             generation,
             [("file_no", "ascending"), ("row", "ascending")],
+            sums,
+            manifest.checksum(manifest.superseded_index) if manifest.superseded_index else None,
         )
         if manifest.superseded_index:
             retired.append(manifest.superseded_index)
@@ -294,6 +314,11 @@ def commit_batch(
         event_index=event_index,
         superseded_index=superseded_index,
         retired_index=tuple(retired),
+        checksums={**manifest.checksums, **sums},
+    )
+    kept = new.referenced_paths()
+    new = dataclasses.replace(
+        new, checksums={k: v for k, v in new.checksums.items() if k in kept}
     )
     save_manifest(root, new)
     _checkpoint("committed")

@@ -47,6 +47,7 @@ from stations.store.reading import (
     open_checked,
     position_keys,
     read_rows,
+    read_whole,
 )
 from stations.store.summary import StoreSummary, TypeSummary
 
@@ -322,8 +323,12 @@ class StationMagnitudeStore:
     def _superseded_keys(self, m: Manifest, file_nos: Sequence[int]) -> np.ndarray:
         if m.superseded_index is None or not file_nos:
             return np.zeros(0, np.int64)
-        pf = open_checked(self.root / m.superseded_index, SUPERSEDED_SCHEMA, index=True)
-        table = pf.read()
+        table = read_whole(
+            self.root / m.superseded_index,
+            SUPERSEDED_SCHEMA,
+            index=True,
+            digest=m.checksum(m.superseded_index),
+        )
         keep = pc.is_in(table.column("file_no"), value_set=pa.array(file_nos, pa.int32()))
         table = table.filter(keep)
         return position_keys(table.column("file_no").to_numpy(), table.column("row").to_numpy())
@@ -338,16 +343,24 @@ class StationMagnitudeStore:
 
     def _read_files(
         self,
+        m: Manifest,
         files: list[FileEntry],
         columns: list[str] | None,
         event_ids: np.ndarray | None = None,
     ) -> pa.Table:
+        # A whole-file read checks the file's SHA-256 first; a look-up of a few events reads
+        # only some row groups and relies on their page checksums (stations.store.checksums).
         tables = [
             read_rows(
-                open_checked(self.root / f.path, RECORD_SCHEMA),
+                open_checked(
+                    self.root / f.path,
+                    RECORD_SCHEMA,
+                    digest=m.checksum(f.path) if event_ids is None else None,
+                ),
                 f.file_no,
                 columns=columns,
                 event_ids=event_ids,
+                where=self.root / f.path,
             )
             for f in files
         ]
@@ -395,7 +408,7 @@ class StationMagnitudeStore:
             read_cols = None
             if cols is not None:
                 read_cols = cols + (["origin_time"] if "origin_time" not in cols else [])
-            table = self._read_files(files, read_cols)
+            table = self._read_files(m, files, read_cols)
             if lo is not None or hi is not None:
                 t = table.column("origin_time").cast(pa.int64())
                 mask = pa.array(np.ones(table.num_rows, bool))
@@ -433,7 +446,7 @@ class StationMagnitudeStore:
             if magnitude_type is not None:
                 wanted = _check_type(magnitude_type)
                 files = [f for f in files if f.magnitude_type == wanted]
-            table = self._read_files(files, None, ids)
+            table = self._read_files(m, files, None, ids)
             if not all_revisions:
                 table = self._drop_superseded(m, table, files)
             return table
@@ -454,11 +467,12 @@ class StationMagnitudeStore:
         """File numbers holding rows of any of ``ids_sorted`` (sorted unique event ids)."""
         if m.event_index is None or ids_sorted.size == 0:
             return []
-        pf = open_checked(self.root / m.event_index, EVENT_INDEX_SCHEMA, index=True)
+        path = self.root / m.event_index
+        pf = open_checked(path, EVENT_INDEX_SCHEMA, index=True)
         groups = candidate_row_groups(pf, "event_id", ids_sorted)
         if not groups:
             return []
-        table = pf.read_row_groups(groups)
+        table = read_whole(path, EVENT_INDEX_SCHEMA, index=True, row_groups=groups)
         keep = pc.is_in(table.column("event_id"), value_set=pa.array(ids_sorted, pa.string()))
         nos = pc.unique(table.filter(keep).column("file_no")).to_numpy()
         return [int(x) for x in np.sort(nos)]
@@ -467,7 +481,11 @@ class StationMagnitudeStore:
         """Every quarantined row (columns of :data:`~stations.schema.QUARANTINE_SCHEMA`)."""
         m = self.manifest()
         tables = [
-            open_checked(self.root / b.quarantine_path, QUARANTINE_SCHEMA).read()
+            read_whole(
+                self.root / b.quarantine_path,
+                QUARANTINE_SCHEMA,
+                digest=m.checksum(b.quarantine_path),
+            )
             for b in m.batches
             if b.quarantine_path
         ]
@@ -485,7 +503,7 @@ class StationMagnitudeStore:
             st_parts: list[pa.ChunkedArray] = []
             for mtype in sorted({f.magnitude_type for f in m.files}):
                 files = [f for f in m.files if f.magnitude_type == mtype]
-                table = self._read_files(files, cols)
+                table = self._read_files(m, files, cols)
                 revised = int(pc.sum(pc.greater(table.column("revision"), 1)).as_py() or 0)
                 cur = self._drop_superseded(m, table, files)
                 detected = int(pc.sum(cur.column("detected")).as_py() or 0)
@@ -541,7 +559,7 @@ class StationMagnitudeStore:
             raise StoreCorruptError(
                 f"{exc}: event index listed in the manifest is missing; restore it from a backup"
             ) from None
-        table = self._read_files(files, [*INPUT_COLUMNS, "revision"], ids)
+        table = self._read_files(m, files, [*INPUT_COLUMNS, "revision"], ids)
         try:
             return self._drop_superseded(m, table, files)
         except IndexGoneError as exc:
