@@ -96,3 +96,45 @@ def test_store_folder_linking_outside_is_refused_and_nothing_there_is_deleted(
         assert folder in line and "symbolic link" in line
     assert precious.read_bytes() == b"not magfuse's"
     assert [p.name for p in outside.iterdir()] == [precious.name]
+
+
+def test_damaged_parquet_input_is_rejected_whole(small_store: Path, tmp_path: Path) -> None:
+    """The stored readings written out as uncompressed Parquet with page checksums (as
+    pyarrow writes them with write_page_checksum=True), then 16 bytes overwritten in the
+    middle of the data of each float column: every such file is refused with one line and
+    nothing is stored (before, the changed values came in as revisions)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from stations.schema import INPUT_COLUMNS
+    from stations.store import StationMagnitudeStore
+    from stations.validation import INPUT_SCHEMA
+    from tests.cli.conftest import copy_store
+
+    root = copy_store(small_store, tmp_path / "store")
+    st = StationMagnitudeStore.open(root)
+    before = st.summary()
+    export = tmp_path / "export.parquet"
+    table = pa.Table.from_pandas(
+        st.scan()[list(INPUT_COLUMNS)], schema=INPUT_SCHEMA, preserve_index=False
+    )
+    pq.write_table(table, export, compression="none", write_page_checksum=True)
+    good = export.read_bytes()
+    chunks = pq.ParquetFile(export).metadata.row_group(0)
+    columns = ("magnitude", "azimuth", "distance_km")
+    for name in columns:
+        col = chunks.column(INPUT_SCHEMA.get_field_index(name))
+        mid = col.data_page_offset + col.total_compressed_size // 2
+        bad = bytearray(good)
+        bad[mid : mid + 16] = (1.5).hex().encode()[:16]
+        path = tmp_path / f"damaged_{name}.parquet"
+        path.write_bytes(bytes(bad))
+        res = invoke("ingest", path, "--format", "parquet", "--store", root)
+        assert res.exit_code == 1, (name, res.stdout)
+        assert "damaged" in _one_error_line(res.stderr)
+    after = StationMagnitudeStore.open(root).summary()
+    assert (after.rows_all, after.revised, after.batches) == (
+        before.rows_all,
+        before.revised,
+        before.batches,
+    )
