@@ -29,15 +29,15 @@ from numpy.typing import NDArray
 
 from stations.schema import QUARANTINE_SCHEMA, RECORD_SCHEMA
 from stations.store.atomic import ensure_dir, write_parquet_atomic
-from stations.store.links import inside
+from stations.store.checksums import sha256_of
 from stations.store.layout import (
     OWNED_DIRS,
     data_path,
     index_path,
     quarantine_path,
 )
+from stations.store.links import inside
 from stations.store.manifest import BatchEntry, FileEntry, Manifest, save_manifest
-from stations.store.checksums import sha256_of
 from stations.store.reading import (
     EVENT_INDEX_SCHEMA,
     SUPERSEDED_SCHEMA,
@@ -317,9 +317,7 @@ def commit_batch(
         checksums={**manifest.checksums, **sums},
     )
     kept = new.referenced_paths()
-    new = dataclasses.replace(
-        new, checksums={k: v for k, v in new.checksums.items() if k in kept}
-    )
+    new = dataclasses.replace(new, checksums={k: v for k, v in new.checksums.items() if k in kept})
     save_manifest(root, new)
     _checkpoint("committed")
     return new

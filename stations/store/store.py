@@ -50,6 +50,7 @@ from stations.store.reading import (
     read_whole,
 )
 from stations.store.summary import StoreSummary, TypeSummary
+from stations.store.verify import Problem, verify_manifest
 
 __all__ = ["IngestReport", "StationMagnitudeStore", "file_digest"]
 
@@ -547,6 +548,14 @@ class StationMagnitudeStore:
             )
 
         return self._with_manifest(run)
+
+    def verify(self) -> tuple[int, list[Problem]]:
+        """Check every file the manifest lists against its checksum and read every page.
+
+        Returns the number of files checked and the damaged or missing ones
+        (:func:`stations.store.verify.verify_manifest`).
+        """
+        return verify_manifest(self.root, self.manifest())
 
     # -- writing ---------------------------------------------------------------------------
     def _current_rows(self, m: Manifest, unique: pa.Table) -> pa.Table:

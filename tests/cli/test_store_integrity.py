@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.cli.conftest import demo_slice, invoke
+from tests.cli.conftest import LearnedStore, demo_slice, invoke
 
 
 @pytest.fixture(scope="module")
@@ -138,3 +138,37 @@ def test_damaged_parquet_input_is_rejected_whole(small_store: Path, tmp_path: Pa
         before.revised,
         before.batches,
     )
+
+
+def test_verify_names_each_damaged_file_in_every_part_of_the_store(
+    learned_store: LearnedStore, tmp_path: Path
+) -> None:
+    """A learned and fused store is intact; then one byte range is overwritten in a data
+    file, a model table and a fused file: verify names all three and exits 1."""
+    import json
+
+    from tests.cli.conftest import copy_store
+
+    root = copy_store(learned_store.root, tmp_path / "store")
+    ok = invoke("verify", "--store", root, "--json")
+    assert ok.exit_code == 0, ok.stdout + ok.stderr
+    doc = json.loads(ok.stdout)
+    assert doc["ok"] and doc["damaged"] == []
+    assert all(n > 0 for n in doc["checked"].values()), doc["checked"]
+
+    manifest = json.loads((root / "manifest.json").read_text())
+    data = manifest["files"][0]["path"]
+    units = next((root / "models" / "ML" / "versions").glob("ML-*")) / "units.parquet"
+    fused = next((root / "fused" / "ML").glob("*-events.parquet"))
+    for path in (root / data, units, fused):
+        raw = bytearray(path.read_bytes())
+        mid = len(raw) // 2
+        raw[mid : mid + 16] = bytes(16)
+        path.write_bytes(bytes(raw))
+    res = invoke("verify", "--store", root)
+    assert res.exit_code == 1
+    named = [line for line in res.stdout.splitlines() if line.startswith("DAMAGED ")]
+    assert len(named) == 3, res.stdout
+    for path in (root / data, units, fused):
+        assert any(path.relative_to(root).as_posix() in line for line in named)
+    assert "Traceback" not in res.stderr
