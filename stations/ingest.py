@@ -175,6 +175,7 @@ def ingest_file(
     compute: ComputeOptions | None = None,
     metadata: StationMetadata | None = None,
     on_wait: Callable[[str], None] | None = None,
+    allow_near_duplicates: bool = False,
 ) -> IngestOutcome:
     """Read one file and commit it to ``store`` as one batch.
 
@@ -196,11 +197,16 @@ def ingest_file(
         Station coordinates to fill missing distances when computing.
     on_wait : callable, optional
         Receives one message if the store lock is busy.
+    allow_near_duplicates : bool, default=False
+        Accept events that coincide with stored events under other ids
+        (:mod:`stations.store.duplicates`).
 
     Raises
     ------
     MalformedFileError, UnknownFormatError, FileNotFoundError
         From the readers; nothing is stored then.
+    NearDuplicateEventError
+        If an event coincides with a stored event under another id; nothing is stored.
     StoreBusyError
         If another writer holds the store longer than its lock timeout.
     """
@@ -241,6 +247,7 @@ def ingest_file(
         source_file=result.source_file,
         content_hash=digest,
         on_wait=on_wait,
+        check_near_duplicates=not allow_near_duplicates,
     )
     first = records["origin_time"].min() if not records.empty else None
     first_origin = None if first is None or pd.isna(first) else first.to_pydatetime()

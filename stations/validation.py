@@ -40,6 +40,9 @@ problems                    str, reader's own parse notes none ("")
 
 Rules (each failing rule adds one sentence to the row's ``reason``)
 ------------------------------------------------------------------
+* the event id follows one rule for every format (:func:`stations.schema.canonical_event_ids`:
+  the last ``/``-separated segment of a resource id, so QuakeML's
+  ``smi:.../event/qv2025-02198`` and the CSV's ``qv2025-02198`` are one event);
 * event id, origin time, station code and magnitude type present; network code present;
 * the station id passes :func:`stations.schema.normalise_station_id` (FDSN source identifier
   specification v1.0 character set) and the channel is 1-3 characters ``A-Z 0-9``;
@@ -80,6 +83,7 @@ from stations.schema import (
     INPUT_COLUMNS,
     RECORD_SCHEMA,
     AmplitudeUnit,
+    canonical_event_ids,
     normalise_magnitude_type,
     normalise_station_id,
 )
@@ -569,7 +573,7 @@ def validate_records(
     problems = _text(frame, "problems", n)
     reasons.add_each(~_empty(problems), problems, "{}", str)
 
-    event_id = _text(frame, "event_id", n)
+    event_id = canonical_event_ids(_text(frame, "event_id", n))  # one rule for every format
     reasons.add(_empty(event_id), "event id missing; fill event_id")
     times = _utc_times(frame, n)
     reasons.add(

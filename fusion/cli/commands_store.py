@@ -40,6 +40,14 @@ FormatOption = Annotated[
         help="Reader format of every PATH (default: recognise each file by its content).",
     ),
 ]
+NearDuplicatesFlag = Annotated[
+    bool,
+    typer.Option(
+        "--allow-near-duplicates",
+        help="Accept events that coincide in origin time (1 s) and epicentre (10 km) with "
+        "stored events under other ids; by default such a file is refused.",
+    ),
+]
 PathsArgument = Annotated[
     list[Path],
     typer.Argument(help="Files of station magnitudes; each becomes one batch.", show_default=False),
@@ -83,6 +91,7 @@ def _ingest_one(
     compute: Any,
     metadata: Any,
     default_network: str | None,
+    allow_near_duplicates: bool = False,
 ) -> _Outcome:
     """Read and store one file; per-file problems become an error line, store problems raise."""
     from stations.errors import MagfuseError, StoreBusyError, StoreCorruptError
@@ -99,6 +108,7 @@ def _ingest_one(
             compute=compute,
             metadata=metadata,
             on_wait=lambda msg: typer.echo(msg, err=True),
+            allow_near_duplicates=allow_near_duplicates,
         )
         advance(2 * size)
     except (StoreBusyError, StoreCorruptError):
@@ -127,6 +137,7 @@ def ingest_command(
     compute: ComputeFlag = False,
     stations: StationsOption = None,
     default_network: DefaultNetworkOption = None,
+    allow_near_duplicates: NearDuplicatesFlag = False,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:
@@ -136,7 +147,9 @@ def ingest_command(
     and quarantined rows. A file that cannot be read gets an error line and the others still
     go in; the exit status is 1 only when no file could be read. With --compute, rows that
     carry an amplitude but no magnitude get one from the IASPEI formulas ([compute] section
-    of the configuration); without it they are quarantined.
+    of the configuration); without it they are quarantined. A file whose events coincide in
+    origin time and epicentre with stored events under other ids is refused (the same event
+    would count twice) unless --allow-near-duplicates is given.
     """
     from stations.store import StationMagnitudeStore
 
@@ -150,12 +163,32 @@ def ingest_command(
     if len(paths) > 1 or max(sizes) >= LARGE_FILE_BYTES:
         with typer.progressbar(length=2 * sum(sizes), label="Ingesting", file=sys.stderr) as bar:
             outcomes = [
-                _ingest_one(st, p, format, cfg, bar.update, options, metadata, default_network)
+                _ingest_one(
+                    st,
+                    p,
+                    format,
+                    cfg,
+                    bar.update,
+                    options,
+                    metadata,
+                    default_network,
+                    allow_near_duplicates,
+                )
                 for p in paths
             ]
     else:
         outcomes = [
-            _ingest_one(st, p, format, cfg, lambda _n: None, options, metadata, default_network)
+            _ingest_one(
+                st,
+                p,
+                format,
+                cfg,
+                lambda _n: None,
+                options,
+                metadata,
+                default_network,
+                allow_near_duplicates,
+            )
             for p in paths
         ]
     for out in outcomes:

@@ -92,8 +92,7 @@ def check_version_id(version_id: str) -> str:
     if not isinstance(version_id, str) or not _VERSION_ID.match(version_id):
         raise ModelNotFoundError(
             f"model version {version_id!r} is not a version id "
-            "(TYPE-YYYYMMDDTHHMMSSZ-hash with a known magnitude type); list them with "
-            "'magfuse models'"
+            "(TYPE-YYYYMMDDTHHMMSSZ-hash); list them with 'magfuse models'"
         )
     return version_id
 

@@ -16,7 +16,12 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from stations.errors import ConfigError, SchemaError, StoreCorruptError
+from stations.errors import (
+    ConfigError,
+    NearDuplicateEventError,
+    SchemaError,
+    StoreCorruptError,
+)
 from stations.schema import (
     INPUT_COLUMNS,
     QUARANTINE_SCHEMA,
@@ -26,6 +31,7 @@ from stations.schema import (
 )
 from stations.store.batch import collapse, compare, records_table, rejected_table, screen
 from stations.store.commit import BatchCounts, commit_batch, sweep
+from stations.store.duplicates import NEAR_SECONDS, distinct_events, near_duplicates
 from stations.store.layout import (
     LOCK_NAME,
     MANIFEST_NAME,
@@ -577,6 +583,36 @@ class StationMagnitudeStore:
                 "backup"
             ) from None
 
+    def _refuse_near_duplicates(self, m: Manifest, unique: pa.Table, source_file: str) -> None:
+        """Raise if a batch event coincides with a stored event under another id."""
+        cols = ["event_id", "origin_time", "event_latitude", "event_longitude"]
+        batch = distinct_events(unique.select(cols).to_pandas())
+        if batch.empty or not m.files:
+            return
+        tol = int(NEAR_SECONDS * 1e6)
+        lo, hi = int(batch["t_us"].min()) - tol, int(batch["t_us"].max()) + tol
+        r = m.file_ranges()
+        keep = (r["max_us"] >= lo) & (r["min_us"] <= hi)
+        files = [m.files[i] for i in np.flatnonzero(keep)]
+        if not files:
+            return
+        table = self._read_files(m, files, cols)
+        t = table.column("origin_time").cast(pa.int64())
+        table = table.filter(pc.and_(pc.greater_equal(t, lo), pc.less_equal(t, hi)))
+        found = near_duplicates(batch, distinct_events(table.select(cols).to_pandas()))
+        if not found:
+            return
+        first = found[0]
+        where = "" if first.km is None else f", {first.km:.1f} km"
+        more = len({f.new_id for f in found}) - 1
+        raise NearDuplicateEventError(
+            f"{source_file}: event {first.new_id!r} coincides with stored event "
+            f"{first.stored_id!r} ({first.seconds:.2f} s{where} apart)"
+            + (f", and {more} more event(s) likewise" if more else "")
+            + "; the same event under two ids would count twice. Use the stored ids in the "
+            "file, or ingest with --allow-near-duplicates if they are different events"
+        )
+
     def ingest(
         self,
         records: pd.DataFrame,
@@ -585,6 +621,7 @@ class StationMagnitudeStore:
         source_file: str,
         content_hash: str | None = None,
         on_wait: Callable[[str], None] | None = None,
+        check_near_duplicates: bool = False,
     ) -> IngestReport:
         """Add one batch: a reader's accepted ``records`` and ``rejected`` rows of one file.
 
@@ -609,6 +646,12 @@ class StationMagnitudeStore:
             hash, nothing is written and the report says which batch it was.
         on_wait : callable, optional
             Receives one message if the ingest has to wait for another writer.
+        check_near_duplicates : bool, default=False
+            Refuse the batch if one of its events coincides in origin time and epicentre with
+            a stored event under another id (:mod:`stations.store.duplicates`). Every file
+            ingest (:func:`stations.ingest.ingest_file`, so ``magfuse ingest`` and the nightly
+            run) turns it on unless the operator allows near duplicates; callers that write
+            rows of events already stored (recomputation, tests) leave it off.
 
         Returns
         -------
@@ -616,6 +659,9 @@ class StationMagnitudeStore:
 
         Raises
         ------
+        NearDuplicateEventError
+            If ``check_near_duplicates`` and an event of the batch coincides with a stored
+            event under another id; nothing is written.
         SchemaError
             If ``records`` lacks a column or a column cannot take its declared type.
         StoreBusyError
@@ -636,6 +682,8 @@ class StationMagnitudeStore:
                             source_file, None, 0, table.num_rows, 0, 0, same_content_as=b.batch_id
                         )
             sweep(self.root, m)
+            if check_near_duplicates:
+                self._refuse_near_duplicates(m, collapsed.unique, source_file)
             current = self._current_rows(m, collapsed.unique)
             cmp = compare(collapsed.unique, current)
             quarantine = pa.concat_tables([rejected_rows, screened, collapsed.conflicts])

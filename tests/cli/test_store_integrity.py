@@ -172,3 +172,80 @@ def test_verify_names_each_damaged_file_in_every_part_of_the_store(
     for path in (root / data, units, fused):
         assert any(path.relative_to(root).as_posix() in line for line in named)
     assert "Traceback" not in res.stderr
+
+
+def test_same_events_from_csv_and_quakeml_stay_one_event_each(tmp_path: Path) -> None:
+    """The demo's December as CSV, then the same December as QuakeML
+    (sample_events/demo_network_2025_december.xml, publicIDs smi:.../event/qv2025-NNNNN):
+    the QuakeML adds no event."""
+    import sample_events
+    from stations.store import StationMagnitudeStore
+
+    xml = Path(sample_events.__file__).parent / "demo_network_2025_december.xml"
+    csv = demo_slice(tmp_path / "december.csv", start="2025-12-01")
+    root = tmp_path / "store"
+    assert invoke("ingest", csv, "--store", root).exit_code == 0
+    before = StationMagnitudeStore.open(root).summary().events
+    res = invoke("ingest", xml, "--store", root)
+    assert res.exit_code == 0, res.stdout + res.stderr
+    assert StationMagnitudeStore.open(root).summary().events == before
+
+
+def test_events_under_other_ids_at_the_same_time_and_place_are_refused(
+    small_store: Path, tmp_path: Path
+) -> None:
+    """The stored fortnight again with every event id renamed (an agency's own numbers):
+    refused with one line naming both ids and the option; accepted with the option."""
+    import pandas as pd
+
+    from stations.store import StationMagnitudeStore
+    from tests.cli.conftest import copy_store
+
+    root = copy_store(small_store, tmp_path / "store")
+    frame = pd.read_csv(demo_slice(tmp_path / "same.csv", end="2025-01-15"), dtype=str)
+    first = frame["event_id"].iloc[0]
+    frame["event_id"] = "other-" + frame["event_id"]
+    renamed = tmp_path / "renamed.csv"
+    frame.to_csv(renamed, index=False)
+    before = StationMagnitudeStore.open(root).summary()
+    res = invoke("ingest", renamed, "--store", root)
+    assert res.exit_code == 1
+    line = _one_error_line(res.stderr)
+    assert f"'other-{first}'" in line and f"'{first}'" in line
+    assert "--allow-near-duplicates" in line
+    assert StationMagnitudeStore.open(root).summary().events == before.events
+    ok = invoke("ingest", renamed, "--allow-near-duplicates", "--store", root)
+    assert ok.exit_code == 0, ok.stderr
+    assert StationMagnitudeStore.open(root).summary().events == 2 * before.events
+
+
+def test_near_duplicate_pairs_by_time_and_distance() -> None:
+    """Hand-made events: 0.5 s and 3 km apart is one event; 0.5 s and 50 km, or 5 s apart,
+    are two; an unknown epicentre lets the time decide. Distances: 0.027 deg of latitude is
+    3.0 km on the 6371 km sphere (2 pi 6371 / 360 = 111.19 km per degree)."""
+    import numpy as np
+    import pandas as pd
+
+    from stations.store.duplicates import near_duplicates
+
+    t0 = np.datetime64("2025-03-01T00:00:00", "us").astype(np.int64)
+    stored = pd.DataFrame(
+        {
+            "event_id": ["a", "b", "c"],
+            "t_us": [t0, t0 + 100_000_000, t0 + 200_000_000],
+            "lat": [10.0, 10.0, np.nan],
+            "lon": [20.0, 20.0, np.nan],
+        }
+    )
+    batch = pd.DataFrame(
+        {
+            "event_id": ["x", "y", "z", "w", "a"],
+            "t_us": [t0 + 500_000, t0 + 100_500_000, t0 + 205_000_000, t0 + 200_300_000, t0],
+            "lat": [10.027, 10.45, 10.0, 5.0, 10.0],
+            "lon": [20.0, 20.0, 20.0, 5.0, 20.0],
+        }
+    )
+    found = near_duplicates(batch, stored)
+    assert [(f.new_id, f.stored_id) for f in found] == [("x", "a"), ("w", "c")]
+    assert found[0].km == pytest.approx(3.0, abs=0.01)
+    assert found[1].km is None
