@@ -17,8 +17,10 @@ from fusion.cli.common import (
     JsonOption,
     StationsOption,
     StoreOption,
+    TypeOption,
     compute_setup,
     load,
+    open_store,
     print_advisory,
     store_path,
 )
@@ -28,7 +30,7 @@ if TYPE_CHECKING:
     from stations.ingest import IngestOutcome
     from stations.store import StationMagnitudeStore, StoreSummary
 
-__all__ = ["ingest_command", "register", "store_command"]
+__all__ = ["ingest_command", "register", "retract_command", "store_command"]
 
 #: A single file at least this large (bytes) gets a progress bar too.
 LARGE_FILE_BYTES = 64 * 2**20
@@ -58,6 +60,7 @@ def register(app: typer.Typer) -> None:
     """Mount ``ingest`` and ``store`` on the ``magfuse`` app."""
     app.command("ingest")(ingest_command)
     app.command("store")(store_command)
+    app.command("retract")(retract_command)
 
 
 @dataclass(frozen=True, slots=True)
@@ -275,4 +278,48 @@ def store_command(
         typer.echo(json.dumps(summary.to_dict(), indent=2))
     else:
         typer.echo(render_summary(summary))
+    print_advisory()
+
+
+def retract_command(
+    event_id: Annotated[str, typer.Argument(help="Event id of the reading.", show_default=False)],
+    station: Annotated[
+        str, typer.Option("--station", help="Station id NET.STA.LOC of the reading.")
+    ],
+    reason: Annotated[
+        str, typer.Option("--reason", help="Why it is withdrawn (kept with the batch).")
+    ],
+    channel: Annotated[
+        str | None,
+        typer.Option(
+            "--channel",
+            help="Channel code of the reading (needed when the station has several).",
+        ),
+    ] = None,
+    type: TypeOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Withdraw one station's current reading of an event, e.g. one filed under a wrong channel.
+
+    The reading leaves the current view (fits and fusion no longer use it; re-fuse the event
+    to update its network magnitude) but nothing is deleted: it stays readable among all
+    revisions, and the retraction is a batch of its own with its reason.
+    """
+    cfg = load(config)
+    st = open_store(cfg, store)
+    r = st.retract(
+        event_id,
+        station,
+        magnitude_type=type or cfg.learn.magnitude_type,
+        channel=channel,
+        reason=reason,
+        on_wait=lambda msg: typer.echo(msg, err=True),
+    )
+    typer.echo(
+        f"retracted the {r.magnitude_type} reading of {r.station_id} (channel "
+        f"{r.channel or 'none'}, revision {r.revision}) for event {r.event_id}; batch "
+        f"{r.batch_id}. It stays readable among all revisions; re-fuse the event to update "
+        "its network magnitude"
+    )
     print_advisory()

@@ -77,6 +77,7 @@ class BatchCounts:
     duplicate: int
     revised: int
     quarantined: int
+    retracted: int = 0
 
 
 def _iso(ts: pa.Scalar) -> str:
@@ -305,6 +306,7 @@ def commit_batch(
         quarantined=counts.quarantined,
         file_nos=tuple(e.file_no for e in entries),
         quarantine_path=q_rel,
+        retracted=counts.retracted,
     )
     new = Manifest(
         generation=generation,

@@ -84,6 +84,7 @@ class BatchEntry:
     quarantined: int
     file_nos: tuple[int, ...]
     quarantine_path: str | None
+    retracted: int = 0  # readings withdrawn by 'magfuse retract' (no new row written)
 
 
 @dataclass(frozen=True, slots=True)

@@ -18,6 +18,7 @@ import pyarrow.compute as pc
 
 from stations.errors import (
     ConfigError,
+    EventNotFoundError,
     NearDuplicateEventError,
     SchemaError,
     StoreCorruptError,
@@ -27,9 +28,17 @@ from stations.schema import (
     QUARANTINE_SCHEMA,
     RECORD_SCHEMA,
     SCHEMA_VERSION,
+    canonical_event_ids,
     normalise_magnitude_type,
 )
-from stations.store.batch import collapse, compare, records_table, rejected_table, screen
+from stations.store.batch import (
+    INPUT_SCHEMA,
+    collapse,
+    compare,
+    records_table,
+    rejected_table,
+    screen,
+)
 from stations.store.commit import BatchCounts, commit_batch, sweep
 from stations.store.duplicates import NEAR_SECONDS, distinct_events, near_duplicates
 from stations.store.layout import (
@@ -58,12 +67,14 @@ from stations.store.reading import (
 from stations.store.summary import StoreSummary, TypeSummary
 from stations.store.verify import Problem, verify_manifest
 
-__all__ = ["IngestReport", "StationMagnitudeStore", "file_digest"]
+__all__ = ["IngestReport", "RetractReport", "StationMagnitudeStore", "file_digest"]
 
 _T = TypeVar("_T")
 #: Times a reader re-reads the manifest when an index file it named was retired meanwhile.
 _READ_RETRIES: Final = 5
 _UTC_US = pa.timestamp("us", tz="UTC")
+#: Rows a batch writes: the input columns and the revision (none for a retraction).
+INPUT_SCHEMA_WITH_REVISION = INPUT_SCHEMA.append(pa.field("revision", pa.int32(), nullable=False))
 
 
 def file_digest(path: Path, *, chunk_bytes: int = 1 << 20) -> str:
@@ -73,6 +84,28 @@ def file_digest(path: Path, *, chunk_bytes: int = 1 << 20) -> str:
         while block := fh.read(chunk_bytes):
             h.update(block)
     return f"sha256:{h.hexdigest()}"
+
+
+@dataclass(frozen=True, slots=True)
+class RetractReport:
+    """What :meth:`StationMagnitudeStore.retract` withdrew.
+
+    Attributes
+    ----------
+    batch_id : str
+        The retraction's batch.
+    event_id, station_id, magnitude_type : str
+    channel : str or None
+    revision : int
+        Revision of the withdrawn reading (still readable with ``all_revisions``).
+    """
+
+    batch_id: str
+    event_id: str
+    station_id: str
+    magnitude_type: str
+    channel: str | None
+    revision: int
 
 
 @dataclass(frozen=True, slots=True)
@@ -445,7 +478,8 @@ class StationMagnitudeStore:
         the row groups whose event-id range contains it. Rows are sorted by magnitude type,
         station, channel and revision.
         """
-        ids = np.array([str(event_id)], dtype=object)
+        # the same id rule as ingest, so a full QuakeML resource id finds the event too
+        ids = np.array([canonical_event_ids(pa.array([str(event_id)]))[0].as_py()], dtype=object)
 
         def run(m: Manifest) -> pa.Table:
             file_nos = self._files_of_events(m, ids)
@@ -582,6 +616,93 @@ class StationMagnitudeStore:
                 f"{exc}: superseded index listed in the manifest is missing; restore it from a "
                 "backup"
             ) from None
+
+    def retract(
+        self,
+        event_id: str,
+        station_id: str,
+        *,
+        magnitude_type: str,
+        channel: str | None = None,
+        reason: str,
+        on_wait: Callable[[str], None] | None = None,
+    ) -> RetractReport:
+        """Withdraw the current reading of one station for one event (e.g. a wrong channel).
+
+        The reading leaves the current view, as if a later revision had replaced it with
+        nothing; it stays readable with ``all_revisions=True`` and the retraction is a batch
+        of its own in the manifest (source ``retract: <reason>``). Nothing is deleted.
+
+        Parameters
+        ----------
+        event_id, station_id : str
+            The reading's event and FDSN ``NET.STA.LOC`` station id.
+        magnitude_type : str
+            Its magnitude type.
+        channel : str, optional
+            Its channel code; may be omitted when the station has one current reading of that
+            type for the event.
+        reason : str
+            Why, recorded with the batch.
+
+        Raises
+        ------
+        EventNotFoundError
+            If no current reading matches; the message lists the station's channels.
+        ConfigError
+            If ``channel`` is omitted and the station has several current readings.
+        """
+        mtype = _check_type(magnitude_type)
+        ev = canonical_event_ids(pa.array([str(event_id)]))[0].as_py()
+        sta = str(station_id).strip().upper()
+        if not reason.strip():
+            raise ConfigError("retract needs a reason (--reason TEXT), recorded with the batch")
+        with self._lock.hold(on_wait):
+            m = load_manifest(self.root)
+            sweep(self.root, m)
+            probe = pa.table({"event_id": pa.array([ev], pa.string())})
+            cur = self._current_rows(m, probe).to_pandas()
+            cur = cur[(cur["station_id"] == sta) & (cur["magnitude_type"] == mtype)]
+            chans = sorted(str(c) if c is not None and c == c else "(none)" for c in cur["channel"])
+            if channel is not None:
+                want = channel.strip().upper()
+                cur = cur[cur["channel"].fillna("").str.upper() == want]
+            if cur.empty:
+                raise EventNotFoundError(
+                    f"no current {mtype} reading of station {sta} for event {ev!r}"
+                    + (f" on channel {channel!r}" if channel is not None else "")
+                    + (f"; its channels: {', '.join(chans)}" if chans else "")
+                    + "; check the ids with 'magfuse event'"
+                )
+            if len(cur) > 1:
+                raise ConfigError(
+                    f"station {sta} has {len(cur)} current {mtype} readings for event {ev!r} "
+                    f"(channels {', '.join(chans)}); name one with --channel"
+                )
+            gone = position_keys(cur[FILE_NO].to_numpy(), cur[ROW].to_numpy())
+            now = datetime.now(UTC)
+            batch_id = new_batch_id(now)
+            commit_batch(
+                self.root,
+                m,
+                batch_id=batch_id,
+                now=now,
+                source_file=f"retract: {reason.strip()}",
+                content_hash=None,
+                rows=INPUT_SCHEMA_WITH_REVISION.empty_table(),
+                quarantine=rejected_table(None, "retract"),
+                superseded=gone,
+                counts=BatchCounts(0, 0, 0, 0, retracted=1),
+            )
+        channel_text = cur["channel"].iloc[0]
+        return RetractReport(
+            batch_id,
+            ev,
+            sta,
+            mtype,
+            channel_text if channel_text == channel_text else None,
+            int(cur["revision"].iloc[0]),
+        )
 
     def _refuse_near_duplicates(self, m: Manifest, unique: pa.Table, source_file: str) -> None:
         """Raise if a batch event coincides with a stored event under another id."""

@@ -249,3 +249,58 @@ def test_near_duplicate_pairs_by_time_and_distance() -> None:
     assert [(f.new_id, f.stored_id) for f in found] == [("x", "a"), ("w", "c")]
     assert found[0].km == pytest.approx(3.0, abs=0.01)
     assert found[1].km is None
+
+
+def test_reading_under_a_wrong_channel_can_be_retracted_and_stays_on_record(
+    small_store: Path, tmp_path: Path
+) -> None:
+    """A corrected channel code arrives as a second reading of one station; retracting the
+    old one leaves one current reading, and the old one is still among all revisions."""
+    import pandas as pd
+
+    from stations.store import StationMagnitudeStore
+    from tests.cli.conftest import copy_store
+
+    root = copy_store(small_store, tmp_path / "store")
+    frame = pd.read_csv(demo_slice(tmp_path / "d.csv", end="2025-01-15"), dtype=str)
+    row = frame.iloc[[0]].copy()
+    old_channel = row["channel"].iloc[0]
+    row["channel"] = "HHZ" if old_channel != "HHZ" else "HHE"
+    fixed = tmp_path / "fixed.csv"
+    row.to_csv(fixed, index=False)
+    assert invoke("ingest", fixed, "--store", root).exit_code == 0
+    ev = row["event_id"].iloc[0]
+    sta = f"{row['network'].iloc[0]}.{row['station'].iloc[0]}.{row['location'].iloc[0]}"
+    st = StationMagnitudeStore.open(root)
+    assert (st.event(ev)["station_id"] == sta).sum() == 2
+    res = invoke(
+        "retract",
+        ev,
+        "--station",
+        sta,
+        "--channel",
+        old_channel,
+        "--reason",
+        "channel code corrected",
+        "--store",
+        root,
+    )
+    assert res.exit_code == 0, res.stderr
+    current = StationMagnitudeStore.open(root).event(ev)
+    mine = current[current["station_id"] == sta]
+    assert mine["channel"].tolist() == [row["channel"].iloc[0]]
+    every = StationMagnitudeStore.open(root).event(ev, all_revisions=True)
+    assert old_channel in every[every["station_id"] == sta]["channel"].tolist()
+    again = invoke(
+        "retract",
+        ev,
+        "--station",
+        sta,
+        "--channel",
+        old_channel,
+        "--reason",
+        "x",
+        "--store",
+        root,
+    )
+    assert again.exit_code == 1 and "no current ML reading" in _one_error_line(again.stderr)
