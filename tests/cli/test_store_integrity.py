@@ -304,3 +304,19 @@ def test_reading_under_a_wrong_channel_can_be_retracted_and_stays_on_record(
         root,
     )
     assert again.exit_code == 1 and "no current ML reading" in _one_error_line(again.stderr)
+
+
+def test_reference_stations_that_do_not_exist_are_an_error_at_learn_time(
+    small_store: Path, tmp_path: Path
+) -> None:
+    from tests.cli.conftest import write_config
+
+    config = write_config(
+        tmp_path / "ref.toml",
+        '[pairs]\nglobal_test_replicates = 20\n[learn]\nreference_stations = ["QV.NOPE.00"]\n',
+    )
+    res = invoke("learn", "--store", small_store, "--config", config)
+    assert res.exit_code == 1
+    line = _one_error_line(res.stderr)
+    assert "'QV.NOPE.00'" in line and "known stations: " in line and "QV.VB01.00" in line
+    assert not (small_store / "models").exists()
