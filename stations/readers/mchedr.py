@@ -18,7 +18,8 @@ slice        content                      unit               record column
 ============ ============================ ================== =================================
 
 The origin is the ``HY`` hypocentre (time UTC, latitude, longitude, depth km); the event id is
-ObsPy's ``quakeml:us.anss.org/event/<date><time>`` as given. Station codes carry no network:
+the last segment of ObsPy's ``quakeml:us.anss.org/event/<date><time>``, ``<date><time>``
+(the event-id rule of every reader, :func:`stations.schema.canonical_event_ids`). Station codes carry no network:
 ObsPy writes a blank network code, and every station gets ``default_network``
 (:data:`~stations.readers.base.DEFAULT_NETWORK` unless given). The mb usage flag after the
 magnitude (column 60) is not read by ObsPy and not used here; ``source_weight`` stays empty.
