@@ -11,6 +11,7 @@ collide with another installed package called ``config``.
 
 from __future__ import annotations
 
+import json
 import tomllib
 from pathlib import Path
 from typing import Literal
@@ -158,7 +159,9 @@ def load_config(path: Path | None = None) -> MagfuseConfig:
     Raises
     ------
     ConfigError
-        If the file is missing, is not TOML, or holds an unknown key or invalid value. The
+        If the file is missing, is not TOML, or holds an unknown key or invalid value. Values
+        must have their declared type: text is never converted to a number or a flag
+        (``"30"``, ``"yes"`` are errors); an integer is accepted for a decimal number. The
         message names the file and the first offending key.
     """
     if path is None:
@@ -175,7 +178,10 @@ def load_config(path: Path | None = None) -> MagfuseConfig:
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{source}: not valid TOML ({exc}); fix the syntax") from None
     try:
-        return MagfuseConfig.model_validate(data)
+        # Strict validation through JSON: a TOML string is never turned into a number or a
+        # flag ("30", "yes" are errors), while an integer where a float is declared (30 for
+        # 30.0) and an array where a pair is declared stay accepted.
+        return MagfuseConfig.model_validate_json(json.dumps(data, default=str), strict=True)
     except ValidationError as exc:
         err = exc.errors()[0]
         key = ".".join(str(p) for p in err["loc"])

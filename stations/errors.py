@@ -24,6 +24,7 @@ __all__ = [
     "MagfuseError",
     "MalformedFileError",
     "ModelNotFoundError",
+    "NearDuplicateEventError",
     "NotFittedError",
     "SchemaError",
     "StationNotFoundError",
@@ -75,6 +76,10 @@ class EventNotFoundError(MagfuseError, KeyError):
 
     def __str__(self) -> str:  # KeyError would quote the message
         return str(self.args[0]) if self.args else ""
+
+
+class NearDuplicateEventError(MagfuseError, ValueError):
+    """A batch holds events that coincide in time and place with stored events under other ids."""
 
 
 class StoreBusyError(MagfuseError):

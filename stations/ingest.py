@@ -35,10 +35,12 @@ if TYPE_CHECKING:
 __all__ = [
     "IngestOutcome",
     "build_compute_options",
+    "decimals_of",
     "hold_uncomputed",
     "ingest_file",
     "options_fingerprint",
     "recompute_window",
+    "unchanged_within_precision",
 ]
 
 #: Reason given to a detection that carries an amplitude but no magnitude when nothing
@@ -173,6 +175,7 @@ def ingest_file(
     compute: ComputeOptions | None = None,
     metadata: StationMetadata | None = None,
     on_wait: Callable[[str], None] | None = None,
+    allow_near_duplicates: bool = False,
 ) -> IngestOutcome:
     """Read one file and commit it to ``store`` as one batch.
 
@@ -194,11 +197,16 @@ def ingest_file(
         Station coordinates to fill missing distances when computing.
     on_wait : callable, optional
         Receives one message if the store lock is busy.
+    allow_near_duplicates : bool, default=False
+        Accept events that coincide with stored events under other ids
+        (:mod:`stations.store.duplicates`).
 
     Raises
     ------
     MalformedFileError, UnknownFormatError, FileNotFoundError
         From the readers; nothing is stored then.
+    NearDuplicateEventError
+        If an event coincides with a stored event under another id; nothing is stored.
     StoreBusyError
         If another writer holds the store longer than its lock timeout.
     """
@@ -239,6 +247,7 @@ def ingest_file(
         source_file=result.source_file,
         content_hash=digest,
         on_wait=on_wait,
+        check_near_duplicates=not allow_near_duplicates,
     )
     first = records["origin_time"].min() if not records.empty else None
     first_origin = None if first is None or pd.isna(first) else first.to_pydatetime()
@@ -286,5 +295,87 @@ def recompute_window(
     res = compute_station_magnitudes(
         records, metadata=metadata, options=replace(options, recompute=True)
     )
-    report = store.ingest(res.records, res.rejected, source_file=source, on_wait=on_wait)
-    return IngestOutcome(report, res.n_computed, res.n_distances_filled, res.n_out_of_domain)
+    same = unchanged_within_precision(res.records, records)
+    changed = res.records[~same]
+    counts = (res.n_computed, res.n_distances_filled, res.n_out_of_domain)
+    if changed.empty and res.rejected.empty:
+        from stations.store import IngestReport
+
+        return IngestOutcome(IngestReport(source, None, 0, int(same.sum()), 0, 0), *counts)
+    report = store.ingest(changed, res.rejected, source_file=source, on_wait=on_wait)
+    report = replace(report, duplicate=report.duplicate + int(same.sum()))
+    return IngestOutcome(report, *counts)
+
+
+def decimals_of(values: np.ndarray, *, most: int = 9) -> np.ndarray:
+    """Decimal places each value was given with: the smallest d with round(x, d) == x.
+
+    Parameters
+    ----------
+    values : ndarray of float
+    most : int, default=9
+        Values with more places (computed values) get ``most``.
+
+    Returns
+    -------
+    ndarray of int
+        Places per value; ``most`` for NaN.
+    """
+    x = np.asarray(values, dtype=float)
+    out = np.full(x.shape, most, dtype=np.int64)
+    undecided = np.isfinite(x)
+    scale = np.maximum(np.abs(x), 1.0)
+    for d in range(most):  # loop over decimal places, not rows
+        hit = undecided & (np.abs(np.round(x, d) - x) <= 1e-9 * scale)
+        out[hit] = d
+        undecided &= ~hit
+    return out
+
+
+def unchanged_within_precision(new: pd.DataFrame, old: pd.DataFrame) -> np.ndarray:
+    """Rows of ``new`` whose stored reading (same key in ``old``) it only restates.
+
+    A recomputed value equals the stored one when they differ by at most half a unit in the
+    last decimal place of the stored value (a magnitude stored as ``1.214`` takes any value
+    within 0.0005: the source rounded it to three places, so the recomputation cannot say
+    more). Text and flag columns must be equal, except that a ``formula`` the stored row did
+    not name counts as equal (the value stayed, only its provenance would be added).
+
+    Parameters
+    ----------
+    new, old : pandas.DataFrame
+        Columns :data:`~stations.schema.INPUT_COLUMNS`; ``old`` holds at most one row per
+        :data:`~stations.schema.RECORD_KEY`.
+
+    Returns
+    -------
+    ndarray of bool, shape (len(new),)
+        True where the row changes nothing beyond the stored precision.
+    """
+    from stations.schema import RECORD_KEY, VALUE_COLUMNS
+
+    if new.empty or old.empty:
+        return np.zeros(len(new), dtype=bool)
+    key = list(RECORD_KEY)
+    left = new[key].astype(object).where(new[key].notna(), "\x00").reset_index(drop=True)
+    right = old[key].astype(object).where(old[key].notna(), "\x00").reset_index(drop=True)
+    right["__old"] = np.arange(len(old))
+    at = left.merge(right, on=key, how="left")["__old"].to_numpy()
+    found = ~pd.isna(at)
+    idx = np.where(found, at, 0).astype(np.int64)
+    same = found.copy()
+    for col in VALUE_COLUMNS:  # loop over columns, not rows
+        a = new[col].to_numpy()
+        b = old[col].to_numpy()[idx]
+        if pd.api.types.is_float_dtype(new[col]) and pd.api.types.is_float_dtype(old[col]):
+            a_f, b_f = a.astype(float), b.astype(float)
+            tol = 0.5 * 10.0 ** -decimals_of(b_f).astype(float) + 1e-12
+            both_nan = np.isnan(a_f) & np.isnan(b_f)
+            same &= both_nan | (np.abs(a_f - b_f) <= tol)
+        else:
+            a_na, b_na = pd.isna(a), pd.isna(b)
+            eq = (a_na & b_na) | (~a_na & ~b_na & (a.astype(object) == b.astype(object)))
+            if col == "formula":
+                eq |= b_na
+            same &= eq
+    return same

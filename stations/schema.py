@@ -42,6 +42,7 @@ __all__ = [
     "VALUE_COLUMNS",
     "AmplitudeUnit",
     "MagnitudeType",
+    "canonical_event_ids",
     "check_schema",
     "normalise_magnitude_type",
     "normalise_station_id",
@@ -151,6 +152,48 @@ def normalise_station_id(network: str, station: str, location: str | None = None
             "(network 1-8 and station 1-8 characters A-Z 0-9, location 0-2)"
         )
     return text
+
+
+#: The event-id rule: a resource id (``scheme:...``, as QuakeML's ``smi:`` and ``quakeml:``)
+#: keeps its last non-empty ``/``-separated segment; other ids are kept whole.
+_EVENT_ID_TAIL: Final = r"^[A-Za-z][A-Za-z0-9+.\-]*:(?:.*/)?([^/]+?)/*$"
+
+
+def canonical_event_ids(values: pa.Array | pa.ChunkedArray) -> pa.Array:
+    """The event id magfuse stores, from any format's event identifier (vectorized).
+
+    **One rule for every format:** surrounding white space is dropped, and an identifier
+    that is a resource id (it starts with a URI scheme such as ``smi:`` or ``quakeml:``, as
+    QuakeML 1.2 requires of a publicID) keeps only its last non-empty ``/``-separated
+    segment. So QuakeML's ``smi:magfuse.invalid/demo2025/event/qv2025-02198``, the CSV's
+    ``qv2025-02198`` and an IMS1.0 bulletin's ``smi:local/<uuid>/event/qv2025-02198`` (as
+    ObsPy builds it) are one event, ``qv2025-02198``. Any other id, also one with ``/`` such
+    as ``2025/123``, is kept whole.
+    Ids of different agencies that share a last segment would become one id; the
+    near-duplicate guard of the store (``stations.store.duplicates``) reports events that
+    coincide under different ids, not this case.
+
+    Parameters
+    ----------
+    values : pyarrow string array
+        Event identifiers as the reader found them (nulls stay null).
+
+    Returns
+    -------
+    pyarrow.Array of string
+
+    Examples
+    --------
+    >>> canonical_event_ids(pa.array([
+    ...     "smi:magfuse.invalid/demo2025/event/qv2025-02198", " qv2025-02198 ",
+    ...     "quakeml:us.anss.org/event/20120101052755.98", "2025/123", None])).to_pylist()
+    ['qv2025-02198', 'qv2025-02198', '20120101052755.98', '2025/123', None]
+    """
+    import pyarrow.compute as pc
+
+    arr = values.combine_chunks() if isinstance(values, pa.ChunkedArray) else values
+    arr = pc.utf8_trim_whitespace(arr.cast(pa.string()))
+    return pc.replace_substring_regex(arr, pattern=_EVENT_ID_TAIL, replacement=r"\1")
 
 
 def _field(

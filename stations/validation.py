@@ -40,6 +40,9 @@ problems                    str, reader's own parse notes none ("")
 
 Rules (each failing rule adds one sentence to the row's ``reason``)
 ------------------------------------------------------------------
+* the event id follows one rule for every format (:func:`stations.schema.canonical_event_ids`:
+  the last ``/``-separated segment of a resource id, so QuakeML's
+  ``smi:.../event/qv2025-02198`` and the CSV's ``qv2025-02198`` are one event);
 * event id, origin time, station code and magnitude type present; network code present;
 * the station id passes :func:`stations.schema.normalise_station_id` (FDSN source identifier
   specification v1.0 character set) and the channel is 1-3 characters ``A-Z 0-9``;
@@ -52,7 +55,8 @@ Rules (each failing rule adds one sentence to the row's ``reason``)
 * ranges: latitude [-90, 90], longitude [-180, 180], depth below 800 km (no earthquake is known
   deeper than about 700 km: common practice, no source; a larger value is almost always a depth
   in metres), distances >= 0, distance_deg <= 180, azimuth [0, 360], period > 0, source weight
-  >= 0; an infinite value is never accepted.
+  >= 0; an infinite value is never accepted;
+* the origin time lies between :data:`EARLIEST_ORIGIN` (1900) and one day after now (UTC).
 
 The loop runs over rules (about twenty), never over rows: numbers are numpy masks, text goes
 through ``pyarrow.compute`` kernels, and station ids, magnitude types and units are checked once
@@ -65,6 +69,7 @@ from __future__ import annotations
 import json
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from typing import Any, Final
 
 import numpy as np
@@ -78,6 +83,7 @@ from stations.schema import (
     INPUT_COLUMNS,
     RECORD_SCHEMA,
     AmplitudeUnit,
+    canonical_event_ids,
     normalise_magnitude_type,
     normalise_station_id,
 )
@@ -247,6 +253,21 @@ def _bool(frame: pd.DataFrame, name: str, n: int, default: bool) -> NDArray[np.b
     if col.dtype == bool:
         return col.to_numpy(dtype=bool)
     return col.astype(object).where(col.notna(), default).to_numpy(dtype=bool)
+
+
+#: Earliest origin time accepted (UTC): instrumental station magnitudes begin in the 20th
+#: century (common practice, no source); an earlier date is almost always a typing error.
+EARLIEST_ORIGIN: Final = "1900-01-01T00:00:00"
+
+
+def plausible_origin_range() -> tuple[np.datetime64, np.datetime64]:
+    """Accepted origin times: from :data:`EARLIEST_ORIGIN` to one day after now (UTC).
+
+    A day of slack allows for clocks and time zones that are a little off; a later origin
+    time (e.g. the year 9999) is a typing error, not a future event.
+    """
+    now = np.datetime64(datetime.now(UTC).replace(tzinfo=None), "us")
+    return np.datetime64(EARLIEST_ORIGIN, "us"), now + np.timedelta64(1, "D")
 
 
 def _utc_times(frame: pd.DataFrame, n: int) -> NDArray[np.datetime64]:
@@ -552,12 +573,21 @@ def validate_records(
     problems = _text(frame, "problems", n)
     reasons.add_each(~_empty(problems), problems, "{}", str)
 
-    event_id = _text(frame, "event_id", n)
+    event_id = canonical_event_ids(_text(frame, "event_id", n))  # one rule for every format
     reasons.add(_empty(event_id), "event id missing; fill event_id")
     times = _utc_times(frame, n)
     reasons.add(
         np.isnat(times),
         "origin time missing or not an ISO 8601 time; give e.g. 2024-05-01T12:00:00Z",
+    )
+    earliest, latest = plausible_origin_range()
+    implausible = ~np.isnat(times) & ((times < earliest) | (times > latest))
+    reasons.add_each(
+        implausible,
+        times,
+        f"origin time {{}} is outside {EARLIEST_ORIGIN[:4]} .. one day from now (UTC); "
+        "correct the date (a typing error in the year?)",
+        lambda t: f"{np.datetime_as_string(np.datetime64(t, 's'))}Z",
     )
     station_id = _station_ids(frame, n, reasons)
     channel = pc.utf8_upper(_text(frame, "channel", n))

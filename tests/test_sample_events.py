@@ -641,8 +641,8 @@ def test_project_quakeml_reader_takes_every_station_magnitude_and_weight(
     assert len(result.rejected) == 0
     assert len(result.records) == len(dec)
     rec = result.records
-    # Event ids are the QuakeML publicIDs, which end in the CSV event id.
-    rec_key = rec["event_id"].str.rsplit("/", n=1).str[1] + " " + rec["station_id"]
+    # Event ids are the last segment of the QuakeML publicIDs: the CSV event id.
+    rec_key = rec["event_id"] + " " + rec["station_id"]
     csv_key = dec["event_id"] + " " + dec["station_id"]
     merged = pd.DataFrame({"key": rec_key, "amp": rec["amplitude"], "w": rec["source_weight"]})
     merged = merged.merge(

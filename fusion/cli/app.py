@@ -58,6 +58,7 @@ def _register() -> None:
 #: Command modules, each with ``register(app)``; order is the order of ``magfuse --help``.
 _COMMAND_MODULES: tuple[str, ...] = (
     "commands_store",
+    "commands_verify",
     "commands_compute",
     "commands_model",
     "commands_review",

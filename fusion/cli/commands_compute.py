@@ -39,7 +39,9 @@ def compute_command(
     """Recompute station magnitudes of one type from their amplitudes after a table change.
 
     Uses the formulas and tables of the [compute] configuration section. Changed values
-    become a new store revision; the old ones stay retrievable.
+    become a new store revision; the old ones stay retrievable. A value that differs from the
+    stored one by less than half a unit in the stored value's last decimal place is unchanged,
+    and when nothing changed nothing is written.
     """
     from stations.ingest import recompute_window
 
@@ -62,6 +64,7 @@ def compute_command(
     typer.echo(
         f"{mtype}: {outcome.computed} recomputed with {options.ml_correction.name} / "
         f"{options.q_table.name}; {r.revised} changed (new revision), {r.duplicate} unchanged, "
-        f"{r.quarantined} quarantined; batch {r.batch_id}"
+        f"{r.quarantined} quarantined; "
+        + (f"batch {r.batch_id}" if r.batch_id else "nothing written (no value changed)")
     )
     print_advisory()

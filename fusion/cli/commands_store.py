@@ -17,8 +17,10 @@ from fusion.cli.common import (
     JsonOption,
     StationsOption,
     StoreOption,
+    TypeOption,
     compute_setup,
     load,
+    open_store,
     print_advisory,
     store_path,
 )
@@ -28,7 +30,7 @@ if TYPE_CHECKING:
     from stations.ingest import IngestOutcome
     from stations.store import StationMagnitudeStore, StoreSummary
 
-__all__ = ["ingest_command", "register", "store_command"]
+__all__ = ["ingest_command", "register", "retract_command", "store_command"]
 
 #: A single file at least this large (bytes) gets a progress bar too.
 LARGE_FILE_BYTES = 64 * 2**20
@@ -38,6 +40,14 @@ FormatOption = Annotated[
     typer.Option(
         "--format",
         help="Reader format of every PATH (default: recognise each file by its content).",
+    ),
+]
+NearDuplicatesFlag = Annotated[
+    bool,
+    typer.Option(
+        "--allow-near-duplicates",
+        help="Accept events that coincide in origin time (1 s) and epicentre (10 km) with "
+        "stored events under other ids; by default such a file is refused.",
     ),
 ]
 PathsArgument = Annotated[
@@ -50,6 +60,7 @@ def register(app: typer.Typer) -> None:
     """Mount ``ingest`` and ``store`` on the ``magfuse`` app."""
     app.command("ingest")(ingest_command)
     app.command("store")(store_command)
+    app.command("retract")(retract_command)
 
 
 @dataclass(frozen=True, slots=True)
@@ -64,6 +75,8 @@ def _report_line(path: Path, outcome: IngestOutcome) -> str:
     report = outcome.report
     if report.same_content_as is not None:
         return f"{path}: same content as batch {report.same_content_as}; nothing added"
+    if report.no_rows:
+        return f"{path}: no rows (only a header?); nothing added, no batch created"
     computed = f", {outcome.computed} magnitudes computed" if outcome.computed else ""
     return (
         f"{path}: {report.accepted} accepted ({report.revised} revised), "
@@ -81,6 +94,7 @@ def _ingest_one(
     compute: Any,
     metadata: Any,
     default_network: str | None,
+    allow_near_duplicates: bool = False,
 ) -> _Outcome:
     """Read and store one file; per-file problems become an error line, store problems raise."""
     from stations.errors import MagfuseError, StoreBusyError, StoreCorruptError
@@ -97,6 +111,7 @@ def _ingest_one(
             compute=compute,
             metadata=metadata,
             on_wait=lambda msg: typer.echo(msg, err=True),
+            allow_near_duplicates=allow_near_duplicates,
         )
         advance(2 * size)
     except (StoreBusyError, StoreCorruptError):
@@ -125,6 +140,7 @@ def ingest_command(
     compute: ComputeFlag = False,
     stations: StationsOption = None,
     default_network: DefaultNetworkOption = None,
+    allow_near_duplicates: NearDuplicatesFlag = False,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:
@@ -134,7 +150,9 @@ def ingest_command(
     and quarantined rows. A file that cannot be read gets an error line and the others still
     go in; the exit status is 1 only when no file could be read. With --compute, rows that
     carry an amplitude but no magnitude get one from the IASPEI formulas ([compute] section
-    of the configuration); without it they are quarantined.
+    of the configuration); without it they are quarantined. A file whose events coincide in
+    origin time and epicentre with stored events under other ids is refused (the same event
+    would count twice) unless --allow-near-duplicates is given.
     """
     from stations.store import StationMagnitudeStore
 
@@ -148,12 +166,32 @@ def ingest_command(
     if len(paths) > 1 or max(sizes) >= LARGE_FILE_BYTES:
         with typer.progressbar(length=2 * sum(sizes), label="Ingesting", file=sys.stderr) as bar:
             outcomes = [
-                _ingest_one(st, p, format, cfg, bar.update, options, metadata, default_network)
+                _ingest_one(
+                    st,
+                    p,
+                    format,
+                    cfg,
+                    bar.update,
+                    options,
+                    metadata,
+                    default_network,
+                    allow_near_duplicates,
+                )
                 for p in paths
             ]
     else:
         outcomes = [
-            _ingest_one(st, p, format, cfg, lambda _n: None, options, metadata, default_network)
+            _ingest_one(
+                st,
+                p,
+                format,
+                cfg,
+                lambda _n: None,
+                options,
+                metadata,
+                default_network,
+                allow_near_duplicates,
+            )
             for p in paths
         ]
     for out in outcomes:
@@ -240,4 +278,48 @@ def store_command(
         typer.echo(json.dumps(summary.to_dict(), indent=2))
     else:
         typer.echo(render_summary(summary))
+    print_advisory()
+
+
+def retract_command(
+    event_id: Annotated[str, typer.Argument(help="Event id of the reading.", show_default=False)],
+    station: Annotated[
+        str, typer.Option("--station", help="Station id NET.STA.LOC of the reading.")
+    ],
+    reason: Annotated[
+        str, typer.Option("--reason", help="Why it is withdrawn (kept with the batch).")
+    ],
+    channel: Annotated[
+        str | None,
+        typer.Option(
+            "--channel",
+            help="Channel code of the reading (needed when the station has several).",
+        ),
+    ] = None,
+    type: TypeOption = None,
+    store: StoreOption = None,
+    config: ConfigOption = None,
+) -> None:
+    """Withdraw one station's current reading of an event, e.g. one filed under a wrong channel.
+
+    The reading leaves the current view (fits and fusion no longer use it; re-fuse the event
+    to update its network magnitude) but nothing is deleted: it stays readable among all
+    revisions, and the retraction is a batch of its own with its reason.
+    """
+    cfg = load(config)
+    st = open_store(cfg, store)
+    r = st.retract(
+        event_id,
+        station,
+        magnitude_type=type or cfg.learn.magnitude_type,
+        channel=channel,
+        reason=reason,
+        on_wait=lambda msg: typer.echo(msg, err=True),
+    )
+    typer.echo(
+        f"retracted the {r.magnitude_type} reading of {r.station_id} (channel "
+        f"{r.channel or 'none'}, revision {r.revision}) for event {r.event_id}; batch "
+        f"{r.batch_id}. It stays readable among all revisions; re-fuse the event to update "
+        "its network magnitude"
+    )
     print_advisory()

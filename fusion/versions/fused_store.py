@@ -57,7 +57,9 @@ Examples
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import json
+import os
 import secrets
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import AbstractContextManager
@@ -76,8 +78,11 @@ import pyarrow.parquet as pq
 from stations.errors import ConfigError, SchemaError, StoreCorruptError
 from stations.schema import check_schema, normalise_magnitude_type
 from stations.store.atomic import ensure_dir, write_bytes_atomic
+from stations.store.checksums import damaged
 from stations.store.layout import TMP_SUFFIX, new_batch_id
+from stations.store.links import inside
 from stations.store.reading import candidate_row_groups
+from stations.store.verify import Problem, verify_files
 
 if TYPE_CHECKING:
     from fusion.network.network_magnitude import FusedMagnitudes
@@ -351,6 +356,8 @@ class _Segment:
     event_rows: int
     contribution_rows: int
     final_rows: int
+    events_sha256: str = ""  # "" in manifests written before checksums
+    contributions_sha256: str = ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -535,14 +542,21 @@ def _set_columns(table: pa.Table, values: dict[str, Any], schema: pa.Schema) -> 
 
 def _write_parquet(
     path: Path, table: pa.Table, schema: pa.Schema, *, codec: str, row_group_size: int
-) -> None:
+) -> str:
     """Write ``table`` through ``schema`` (docs/conventions.md item 14) into memory, then to
     ``path`` with
-    :func:`stations.store.atomic.write_bytes_atomic` (temporary name, fsync, rename)."""
+    :func:`stations.store.atomic.write_bytes_atomic` (temporary name, fsync, rename).
+
+    Pages carry checksums; returns the SHA-256 of the bytes written (``sha256:<hex>``).
+    """
     sink = pa.BufferOutputStream()
-    with pq.ParquetWriter(sink, schema, compression=codec, write_statistics=True) as writer:
+    with pq.ParquetWriter(
+        sink, schema, compression=codec, write_statistics=True, write_page_checksum=True
+    ) as writer:
         writer.write_table(table, row_group_size=row_group_size)
-    write_bytes_atomic(path, sink.getvalue().to_pybytes())
+    data = sink.getvalue().to_pybytes()
+    write_bytes_atomic(path, data)
+    return f"sha256:{hashlib.sha256(data).hexdigest()}"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -640,16 +654,19 @@ class FusedStore:
         Commits the manifest without the retired list if it had one, and returns it.
         """
         keep = m.listed_names() - {Path(p).name for p in m.retired}
+        real_root = Path(os.path.realpath(self.store_root))
         for path in m.retired:
+            if not inside(self.store_root / path, real_root):
+                continue  # never delete through a link out of the store (stations.store.links)
             with contextlib.suppress(FileNotFoundError):
                 (self.store_root / path).unlink()
-        if self.root.is_dir():
+        if self.root.is_dir() and inside(self.root, real_root):
             for folder in self.root.iterdir():
-                if not folder.is_dir():
+                if not folder.is_dir() or not inside(folder, real_root):
                     continue
                 for f in folder.iterdir():
                     ours = f.name.endswith((".parquet", ".parquet" + TMP_SUFFIX))
-                    if ours and f.name not in keep:
+                    if ours and f.name not in keep and inside(f, real_root):
                         with contextlib.suppress(FileNotFoundError):
                             f.unlink()
         if not m.retired:
@@ -657,6 +674,27 @@ class FusedStore:
         cleaned = replace(m, retired=())
         self._commit(cleaned)
         return cleaned
+
+    def verify(self) -> tuple[int, list[Problem]]:
+        """Check every file the fused manifest lists: present, SHA-256, every page readable.
+
+        Returns the number of files checked and the problems (paths relative to the store
+        root). Segments written before checksums existed are checked for readability only.
+        """
+        try:
+            m = self._manifest()
+        except StoreCorruptError as exc:
+            return 1, [Problem(f"{FUSED_DIR}/{MANIFEST_NAME}", str(exc).split(": ", 1)[-1])]
+        items = [
+            (rel, digest or None, schema)
+            for st in m.types.values()
+            for seg in st.segments
+            for rel, digest, schema in (
+                (seg.events, seg.events_sha256, FUSED_EVENTS_SCHEMA),
+                (seg.contributions, seg.contributions_sha256, FUSED_CONTRIBUTIONS_SCHEMA),
+            )
+        ]
+        return len(items), verify_files(self.store_root, items)
 
     # -- reading helpers -------------------------------------------------------------------
     def _read(
@@ -671,21 +709,27 @@ class FusedStore:
         ``event_ids`` (sorted) when given. ``FileNotFoundError`` propagates (retry)."""
         path = self.store_root / rel
         try:
-            pf = pq.ParquetFile(path)
+            pf = pq.ParquetFile(path, page_checksum_verification=True)
         except FileNotFoundError:
             raise
         except (OSError, pa.ArrowInvalid) as exc:
-            raise StoreCorruptError(f"{path}: not readable Parquet ({exc})") from None
+            raise damaged(path, f"not readable Parquet: {str(exc).splitlines()[0]}") from None
         check_schema(pf.schema_arrow, schema, where=str(path))
         cols = list(schema.names) if columns is None else list(columns)
         threads = pf.metadata.num_rows >= _THREADED_ROWS
-        if event_ids is None:
-            table = pf.read(columns=cols, use_threads=threads)
-        else:
-            groups = candidate_row_groups(pf, "event_id", event_ids)
-            table = (
-                pf.read_row_groups(groups, columns=cols, use_threads=threads) if groups else None
-            )
+        try:
+            if event_ids is None:
+                table = pf.read(columns=cols, use_threads=threads)
+            else:
+                groups = candidate_row_groups(pf, "event_id", event_ids)
+                table = (
+                    pf.read_row_groups(groups, columns=cols, use_threads=threads)
+                    if groups
+                    else None
+                )
+        except (OSError, pa.ArrowException) as exc:
+            raise damaged(path, f"a page cannot be read: {str(exc).splitlines()[0]}") from None
+        if event_ids is not None:
             if table is None:
                 return pa.schema([schema.field(c) for c in cols]).empty_table()
             keep = pc.is_in(table.column("event_id"), value_set=pa.array(event_ids, pa.string()))
@@ -1106,10 +1150,7 @@ class FusedStore:
         ensure_dir(folder, self.store_root)
         ev_rel = f"{FUSED_DIR}/{mtype}/{run_id}-events.parquet"
         co_rel = f"{FUSED_DIR}/{mtype}/{run_id}-contributions.parquet"
-        for rel, table, schema in (
-            (ev_rel, events, FUSED_EVENTS_SCHEMA),
-            (co_rel, rows, FUSED_CONTRIBUTIONS_SCHEMA),
-        ):
+        sums = [
             _write_parquet(
                 self.store_root / rel,
                 table,
@@ -1117,6 +1158,11 @@ class FusedStore:
                 codec=_RUN_CODEC,
                 row_group_size=_RUN_ROW_GROUP,
             )
+            for rel, table, schema in (
+                (ev_rel, events, FUSED_EVENTS_SCHEMA),
+                (co_rel, rows, FUSED_CONTRIBUTIONS_SCHEMA),
+            )
+        ]
         versions = tuple(sorted(set(events.column("model_version").to_pylist())))
         segment = _Segment(
             kind="run",
@@ -1127,6 +1173,8 @@ class FusedStore:
             event_rows=events.num_rows,
             contribution_rows=rows.num_rows,
             final_rows=events.num_rows if status is EvaluationStatus.final else 0,
+            events_sha256=sums[0],
+            contributions_sha256=sums[1],
         )
         entry = FusedRun(
             run_id=run_id,
@@ -1198,10 +1246,7 @@ class FusedStore:
         lo, hi = min(s.seq_min for s in chosen), max(s.seq_max for s in chosen)
         stem = f"{FUSED_DIR}/{mtype}/compacted-{hi:010d}-{secrets.token_hex(3)}"
         ensure_dir(self.root / mtype, self.store_root)
-        for suffix, table, schema in (
-            ("events", ev, FUSED_EVENTS_SCHEMA),
-            ("contributions", co, FUSED_CONTRIBUTIONS_SCHEMA),
-        ):
+        sums = [
             _write_parquet(
                 self.store_root / f"{stem}-{suffix}.parquet",
                 table,
@@ -1209,6 +1254,11 @@ class FusedStore:
                 codec=_COMPACT_CODEC,
                 row_group_size=_COMPACT_ROW_GROUP,
             )
+            for suffix, table, schema in (
+                ("events", ev, FUSED_EVENTS_SCHEMA),
+                ("contributions", co, FUSED_CONTRIBUTIONS_SCHEMA),
+            )
+        ]
         merged = _Segment(
             kind="compacted",
             seq_min=lo,
@@ -1218,6 +1268,8 @@ class FusedStore:
             event_rows=ev.num_rows,
             contribution_rows=co.num_rows,
             final_rows=sum(s.final_rows for s in chosen),
+            events_sha256=sums[0],
+            contributions_sha256=sums[1],
         )
         rest = [s for s in state.segments if s not in chosen]
         segments = tuple(sorted([*rest, merged], key=lambda s: s.seq_min))

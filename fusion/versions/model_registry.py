@@ -24,6 +24,7 @@ import contextlib
 import hashlib
 import json
 import os
+import re
 import shutil
 import tempfile
 from collections.abc import Callable, Iterator, Mapping
@@ -38,17 +39,62 @@ import pandas as pd
 
 from fusion.model.parameters import StationParameters
 from fusion.network.gls_blocks import PairCovariance
-from stations.errors import ModelNotFoundError, StoreCorruptError
+from stations.errors import ConfigError, ModelNotFoundError, StoreCorruptError
+from stations.schema import MagnitudeType, normalise_magnitude_type
 from stations.store.atomic import fsync_dir, write_bytes_atomic
+from stations.store.checksums import check_digest, sha256_of
+from stations.store.verify import Problem, verify_files
 
 __all__ = [
     "ModelRegistry",
     "ModelVersion",
+    "check_magnitude_type",
+    "check_version_id",
     "parameters_from_frames",
     "parameters_to_frames",
 ]
 
 _ACTIVE = "active.json"
+#: File of a version folder mapping each other file to its SHA-256 (stations.store.checksums).
+_CHECKSUMS = "checksums.json"
+
+#: A version id: ``<magnitude type>-<YYYYMMDD>T<HHMMSS>Z-<8 hex digits>`` (see ``save``).
+_VERSION_ID = re.compile(
+    r"^(?P<type>" + "|".join(re.escape(m.value) for m in MagnitudeType) + r")"
+    r"-\d{8}T\d{6}Z-[0-9a-f]{8}$"
+)
+
+
+def check_magnitude_type(magnitude_type: str) -> str:
+    """The canonical magnitude type, checked before it becomes a folder name.
+
+    Raises
+    ------
+    ConfigError
+        If ``magnitude_type`` is not a known type or alias (so a value such as ``../x``
+        never reaches a path).
+    """
+    try:
+        return normalise_magnitude_type(str(magnitude_type)).value
+    except ValueError as exc:
+        raise ConfigError(f"--type: {exc}") from None
+
+
+def check_version_id(version_id: str) -> str:
+    """Return ``version_id`` if it matches the version-id pattern, before it touches a path.
+
+    Raises
+    ------
+    ModelNotFoundError
+        If it is not ``TYPE-YYYYMMDDTHHMMSSZ-hash`` with a known magnitude type (e.g.
+        ``../../outside/x-y``); the message says how to list the versions.
+    """
+    if not isinstance(version_id, str) or not _VERSION_ID.match(version_id):
+        raise ModelNotFoundError(
+            f"model version {version_id!r} is not a version id "
+            "(TYPE-YYYYMMDDTHHMMSSZ-hash); list them with 'magfuse models'"
+        )
+    return version_id
 
 
 @dataclass(frozen=True, slots=True)
@@ -163,17 +209,13 @@ class ModelRegistry:
                 yield
 
     def _type_dir(self, magnitude_type: str) -> Path:
-        return self.root / magnitude_type
+        return self.root / check_magnitude_type(magnitude_type)
 
     @staticmethod
     def _type_of(version_id: str) -> str:
-        head, sep, _ = version_id.partition("-")
-        if not sep:
-            raise ModelNotFoundError(
-                f"model version {version_id!r} is not a version id "
-                "(TYPE-YYYYMMDDTHHMMSSZ-hash); list them with 'magfuse models'"
-            )
-        return head
+        match = _VERSION_ID.match(check_version_id(version_id))
+        assert match is not None  # checked above
+        return match.group("type")
 
     # -- writing ---------------------------------------------------------------------------
     def save(
@@ -224,6 +266,13 @@ class ModelRegistry:
                         frame.to_parquet(tmp / "tables" / f"{name}.parquet", index=False)
                 with open(tmp / "meta.json", "w", encoding="utf-8") as fh:
                     json.dump(full_meta, fh, indent=2, sort_keys=True, default=str)
+                sums = {
+                    f.relative_to(tmp).as_posix(): sha256_of(f)
+                    for f in sorted(tmp.rglob("*"))
+                    if f.is_file()
+                }
+                with open(tmp / _CHECKSUMS, "w", encoding="utf-8") as fh:
+                    json.dump(sums, fh, indent=2, sort_keys=True)
                 for f in tmp.rglob("*"):
                     if f.is_file():
                         with open(f, "rb") as fh:
@@ -311,10 +360,11 @@ class ModelRegistry:
 
     def versions(self, magnitude_type: str | None = None) -> list[ModelVersion]:
         """All stored versions (optionally of one type), oldest first."""
+        known = {m.value for m in MagnitudeType}
         types = (
-            [magnitude_type]
+            [check_magnitude_type(magnitude_type)]
             if magnitude_type
-            else sorted(p.name for p in self.root.glob("*") if p.is_dir())
+            else sorted(p.name for p in self.root.glob("*") if p.is_dir() and p.name in known)
         )
         out: list[ModelVersion] = []
         for mtype in types:
@@ -328,6 +378,9 @@ class ModelRegistry:
     def load_parameters(self, version: ModelVersion | str) -> StationParameters:
         """The :class:`StationParameters` of a version."""
         v = self.get(version) if isinstance(version, str) else version
+        sums = self._checksums(v)
+        check_digest(v.path / "units.parquet", sums.get("units.parquet"))
+        check_digest(v.path / "pairs.parquet", sums.get("pairs.parquet"))
         try:
             units = pd.read_parquet(v.path / "units.parquet")
             pairs = pd.read_parquet(v.path / "pairs.parquet")
@@ -347,4 +400,57 @@ class ModelRegistry:
         path = v.path / "tables" / f"{name}.parquet"
         if not path.exists():
             raise ModelNotFoundError(f"model {v.version_id} has no table {name!r}")
+        check_digest(path, self._checksums(v).get(f"tables/{name}.parquet"))
         return pd.read_parquet(path)
+
+    @staticmethod
+    def _checksums(v: ModelVersion) -> dict[str, str]:
+        """The version's recorded SHA-256 per file; empty for versions written without."""
+        path = v.path / _CHECKSUMS
+        try:
+            with open(path, encoding="utf-8") as fh:
+                data = json.load(fh)
+        except FileNotFoundError:
+            return {}
+        except (json.JSONDecodeError, UnicodeDecodeError):
+            raise StoreCorruptError(
+                f"{path}: damaged (not JSON); restore the version folder from a backup"
+            ) from None
+        return {str(k): str(val) for k, val in dict(data).items()}
+
+    def verify(self) -> tuple[int, list[Problem]]:
+        """Check every file of every stored version against its ``checksums.json``.
+
+        Returns the number of files checked and the problems (paths relative to the store
+        root). A version written before checksums existed is checked for readable
+        ``meta.json`` only; an unreadable active pointer is a problem too.
+        """
+        store_root = self.root.parent
+        checked = 0
+        problems: list[Problem] = []
+        known = {m.value for m in MagnitudeType}
+        for tdir in sorted(p for p in self.root.glob("*") if p.is_dir() and p.name in known):
+            active = tdir / _ACTIVE
+            if active.exists():
+                checked += 1
+                try:
+                    json.loads(active.read_text(encoding="utf-8"))
+                except (json.JSONDecodeError, UnicodeDecodeError):
+                    problems.append(Problem(active.relative_to(store_root).as_posix(), "not JSON"))
+            for vdir in sorted((tdir / "versions").glob(f"{tdir.name}-*")):
+                if not vdir.is_dir():
+                    continue
+                rel = vdir.relative_to(store_root).as_posix()
+                try:
+                    sums = self._checksums(ModelVersion(vdir.name, tdir.name, {}, vdir))
+                except StoreCorruptError:
+                    problems.append(Problem(f"{rel}/{_CHECKSUMS}", "not JSON"))
+                    continue
+                items: list[tuple[str, str | None, None]] = [
+                    (f"{rel}/{name}", digest, None) for name, digest in sums.items()
+                ]
+                if not sums:
+                    items = [(f"{rel}/meta.json", None, None)]
+                checked += len(items)
+                problems += verify_files(store_root, items)
+        return checked, problems

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from fusion.observations import ObservationSet
-from stations.errors import InsufficientDataError, ModelNotFoundError
+from stations.errors import ConfigError, InsufficientDataError, ModelNotFoundError
 
 if TYPE_CHECKING:
     from fusion.model.station_model import StationModel
@@ -27,7 +27,14 @@ if TYPE_CHECKING:
     from fusion.versions.model_registry import ModelRegistry, ModelVersion
     from stations.store import StationMagnitudeStore
 
-__all__ = ["LearnOutcome", "config_hash", "learn_candidate", "load_window", "model_summary"]
+__all__ = [
+    "LearnOutcome",
+    "check_reference_stations",
+    "config_hash",
+    "learn_candidate",
+    "load_window",
+    "model_summary",
+]
 
 
 @dataclass(frozen=True, slots=True)
@@ -79,6 +86,34 @@ def load_window(
     return ObservationSet.from_frame(frame, magnitude_type=magnitude_type)
 
 
+def check_reference_stations(
+    reference: tuple[str, ...] | list[str], known: Any, magnitude_type: str
+) -> None:
+    """Raise unless every ``[learn] reference_stations`` id has data in the learning window.
+
+    An unknown id would silently leave the anchor without those stations (units
+    uncalibrated, calibration uncertainty NaN), so it is an error at learn time.
+
+    Raises
+    ------
+    ConfigError
+        Naming the unknown ids and the station ids that are known.
+    """
+    if not reference:
+        return
+    have = {str(s) for s in np.asarray(known).astype(str)}
+    unknown = [r for r in reference if r not in have]
+    if not unknown:
+        return
+    listed = sorted(have)
+    shown = ", ".join(listed[:60]) + (f", ... ({len(listed)} in all)" if len(listed) > 60 else "")
+    raise ConfigError(
+        f"[learn] reference_stations names {', '.join(repr(u) for u in unknown)}, with no "
+        f"{magnitude_type} station magnitudes in the learning window; known stations: "
+        f"{shown or 'none'}. Fix the ids (NET.STA.LOC) or widen the window"
+    )
+
+
 def learn_candidate(
     store: StationMagnitudeStore,
     registry: ModelRegistry,
@@ -124,6 +159,7 @@ def learn_candidate(
     start = end - timedelta(days=window) if math.isfinite(window) else None
     # The scan's end is exclusive; the as-of instant itself belongs to the window.
     obs = load_window(store, mtype, start=start, end=end + timedelta(microseconds=1))
+    check_reference_stations(cfg.learn.reference_stations, obs.station_ids, mtype)
 
     previous = None
     previous_id = registry.active_id(mtype)

@@ -15,6 +15,17 @@ yellowstone  the Holt, Pechmann & Koper (2022) station-ML table :mod:`.yellowsto
 csv          magfuse's own CSV layout, with non-detections     :mod:`.csv`
 ============ ================================================= ===============================
 
+**Event ids: one rule for every format.** Whatever a format calls its event identifier (a
+QuakeML ``publicID`` such as ``smi:magfuse.invalid/demo2025/event/qv2025-02198``, the CSV's
+``event_id`` column ``qv2025-02198``, an IMS1.0 bulletin's event number), a resource id (one
+that starts with a scheme such as ``smi:`` or ``quakeml:``) is stored as its last non-empty
+``/``-separated segment and any other id as it is, white space trimmed
+(:func:`stations.schema.canonical_event_ids`, applied to every reader's rows by
+:func:`stations.validation.validate_records`). The same event read from two formats is
+therefore one event. Events that coincide in origin time and place with stored events under
+*other* ids are refused by the store unless the operator allows them
+(``magfuse ingest --allow-near-duplicates``).
+
 :func:`read_records` probes in that order (the most specific signatures first, the generic
 CSV header last) unless ``format=`` names one; ``format=`` is case-insensitive and also takes
 ObsPy's names ``IMS10BULLETIN``.

@@ -7,8 +7,9 @@ Shared by the QuakeML, IMS1.0 and NEIC "mchedr" readers, which all parse through
 =========================== ================================================================
 record column               taken from
 =========================== ================================================================
-event_id                    ``Event.resource_id`` as given, except ObsPy's per-read prefix
-                            ``smi:local/<uuid>/`` (see :func:`stable_event_id`)
+event_id                    ``Event.resource_id`` without ObsPy's per-read prefix
+                            ``smi:local/<uuid>/`` (see :func:`stable_event_id`); validation
+                            then keeps its last ``/`` segment (one rule for every format)
 origin_time, event_latitude the origin named by ``StationMagnitude.origin_id``; if that id
 event_longitude             resolves to no origin of the event, the event's preferred origin;
 event_depth                 if none, its only origin. Depth: ``Origin.depth`` (m) / 1000 -> km

@@ -41,6 +41,10 @@ What ObsPy 1.5.1 does and what this reader adds (checked by reading and running 
 * **min/max indicator** -- ``>`` is read as "at least this magnitude" and stored as a clipped
   detection (a lower bound); ``<`` (an upper bound) cannot be stored as a detection and the row
   is rejected. That reading of the indicator is from memory, not from the standard's text.
+* **complete message** -- an IMS1.0 message ends with a ``STOP`` line. A bulletin whose last
+  non-blank line is not ``STOP`` was cut short (an interrupted transfer or a full disk) and is
+  rejected whole with :class:`~stations.errors.MalformedFileError` naming the file and its
+  last line, so that part of a bulletin is never stored as if it were all of it.
 
 ``distance_km`` and ``hypocentral_distance_km`` stay empty (the bulletin gives degrees).
 ``source_location`` is ``"line N"`` for lines with an arrival id, else
@@ -74,6 +78,7 @@ from typing import Any, Final
 import numpy as np
 import pandas as pd
 
+from stations.errors import MalformedFileError
 from stations.readers import _sniff
 from stations.readers._catalog import catalog_candidates, read_catalog
 from stations.readers.base import (
@@ -84,7 +89,7 @@ from stations.readers.base import (
 )
 from stations.validation import DEFAULT_MAGNITUDE_RANGE, rejected_frame, validate_records
 
-__all__ = ["is_ims10", "read_ims10", "scan_phase_magnitudes"]
+__all__ = ["check_complete", "is_ims10", "read_ims10", "scan_phase_magnitudes"]
 
 _HEADER: Final = "DATA_TYPE BULLETIN IMS1.0"
 _HEADER_LINES: Final = 40  # ObsPy 1.5.1 allows up to 40 lines of text before the header
@@ -105,6 +110,27 @@ def is_ims10(path: Any) -> bool:
         if upper.startswith(_HEADER):
             return "LONG" not in upper
     return False
+
+
+def check_complete(text: str, shown: str) -> None:
+    """Raise unless the last non-blank line of ``text`` is the closing ``STOP`` line.
+
+    Raises
+    ------
+    MalformedFileError
+        Naming the file, the number and text of its last non-blank line, and the fix.
+    """
+    lines = text.splitlines()
+    last = len(lines)
+    while last > 0 and not lines[last - 1].strip():
+        last -= 1
+    if last and lines[last - 1].strip().upper() == "STOP":
+        return
+    tail = lines[last - 1].strip()[:60] if last else ""
+    raise MalformedFileError(
+        f"{shown}: IMS1.0 bulletin has no closing STOP line (it ends at line {last}: "
+        f"{tail!r}), so it was cut short; fetch the complete bulletin and ingest it again"
+    )
 
 
 def scan_phase_magnitudes(text: str) -> pd.DataFrame:
@@ -184,7 +210,7 @@ def read_ims10(
     Raises
     ------
     MalformedFileError
-        If ObsPy cannot parse the bulletin.
+        If the bulletin lacks its closing ``STOP`` line or ObsPy cannot parse it.
     ConfigError
         If ``default_network`` is not a network code.
     """
@@ -192,6 +218,7 @@ def read_ims10(
     network = check_default_network(default_network)
     with open(path, "rb") as fh:
         text = fh.read().decode("utf-8", errors="replace")
+    check_complete(text, shown)
     scan = scan_phase_magnitudes(text)
     by_arrival = _overrides(scan)
     with warnings.catch_warnings():

@@ -18,10 +18,12 @@ slice        content                      unit               record column
 ============ ============================ ================== =================================
 
 The origin is the ``HY`` hypocentre (time UTC, latitude, longitude, depth km); the event id is
-ObsPy's ``quakeml:us.anss.org/event/<date><time>`` as given. Station codes carry no network:
-ObsPy writes a blank network code, and every station gets ``default_network``
-(:data:`~stations.readers.base.DEFAULT_NETWORK` unless given). The mb usage flag after the
-magnitude (column 60) is not read by ObsPy and not used here; ``source_weight`` stays empty.
+the last segment of ObsPy's ``quakeml:us.anss.org/event/<date><time>``, ``<date><time>``
+(the event-id rule of every reader, :func:`stations.schema.canonical_event_ids`). Station
+codes carry no network: ObsPy writes a blank network code, and every station gets
+``default_network`` (:data:`~stations.readers.base.DEFAULT_NETWORK` unless given). The mb
+usage flag after the magnitude (column 60) is not read by ObsPy and not used here;
+``source_weight`` stays empty.
 In the bundled sample the amplitude field is eight characters wide with three decimals
 (``3945.026``, ``  99.568``); ObsPy 1.5.1 reads seven of them, so the third decimal is lost
 (3945.02 nm, 99.56 nm): at most 0.009 nm, far below the precision of the magnitude.

@@ -24,6 +24,13 @@ source_location                                         ``"row N"`` (1-based), i
 
 Rows go through :func:`stations.validation.validate_records` like those of every other format.
 
+**Damaged files are rejected whole.** Pages are read with their checksums verified (files that
+magfuse writes, the store's and its exports, carry a CRC-32 per page: Apache Parquet format,
+``PageHeader.crc``), and every decoded column of every row group must lie within the minimum
+and maximum that the file's own statistics record for it. A file failing either check is a
+:class:`~stations.errors.MalformedFileError` and no row of it is stored: a damaged file would
+otherwise enter the store as "revisions" of readings it never changed.
+
 Examples
 --------
 >>> import tempfile
@@ -49,6 +56,7 @@ from typing import Any, Final
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
@@ -107,6 +115,42 @@ def _check_schema(schema: pa.Schema, shown: str) -> None:
             )
 
 
+def _check_statistics(pf: pq.ParquetFile, table: pa.Table, shown: str) -> None:
+    """Raise if a decoded column leaves the min/max its row group's statistics record.
+
+    Loops over row groups and columns (tens), never rows; columns without statistics, and
+    text and time columns whose statistics are not comparable after decoding, are skipped.
+    """
+    md = pf.metadata
+    names = pf.schema_arrow.names
+    start = 0
+    for g in range(md.num_row_groups):
+        rg = md.row_group(g)
+        part = table.slice(start, rg.num_rows)
+        start += rg.num_rows
+        for c in range(rg.num_columns):
+            col = rg.column(c)
+            name = col.path_in_schema
+            st = col.statistics
+            if name not in part.column_names or name not in names or st is None:
+                continue
+            arr = part.column(name)
+            if not st.has_min_max or not (
+                pa.types.is_floating(arr.type) or pa.types.is_integer(arr.type)
+            ):
+                continue
+            mm = pc.min_max(arr)
+            lo, hi = mm["min"].as_py(), mm["max"].as_py()
+            if lo is None:
+                continue
+            if lo < st.min or hi > st.max:
+                raise MalformedFileError(
+                    f"{shown}: damaged, column {name!r} of row group {g + 1} holds values "
+                    f"outside the range the file records for it ({st.min} .. {st.max}); "
+                    "nothing of it was stored, write or fetch the file again"
+                )
+
+
 def read_parquet(
     path: Path | str, *, magnitude_range: tuple[float, float] = DEFAULT_MAGNITUDE_RANGE
 ) -> ReadResult:
@@ -127,7 +171,8 @@ def read_parquet(
     Raises
     ------
     MalformedFileError
-        If the file is not readable Parquet, lacks a column, or a column has another type.
+        If the file is not readable Parquet, is damaged (page checksum, values outside its
+        own statistics), lacks a column, or a column has another type.
     """
     shown = display_path(path)
     try:
@@ -138,7 +183,15 @@ def read_parquet(
         ) from None
     _check_schema(schema, shown)
     try:
-        table = pq.read_table(path, columns=list(INPUT_COLUMNS))
+        pf = pq.ParquetFile(path, page_checksum_verification=True)
+        table = pf.read(columns=list(INPUT_COLUMNS))
+    except (pa.ArrowException, OSError) as exc:
+        raise MalformedFileError(
+            f"{shown}: damaged, a page cannot be read ({str(exc).splitlines()[0]}); nothing "
+            "of it was stored, write or fetch the file again"
+        ) from None
+    _check_statistics(pf, table, shown)
+    try:
         table = table.cast(INPUT_SCHEMA, safe=True)
     except (pa.ArrowException, OSError) as exc:
         raise MalformedFileError(
@@ -176,4 +229,4 @@ def write_parquet(records: pd.DataFrame, path: Path | str) -> None:
     table = pa.Table.from_pandas(
         records[list(INPUT_COLUMNS)], schema=INPUT_SCHEMA, preserve_index=False
     )
-    pq.write_table(table, path)
+    pq.write_table(table, path, write_page_checksum=True)

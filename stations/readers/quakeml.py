@@ -20,9 +20,10 @@ magnitude/stationMagnitudeContribution      --               source_weight
 /weight (by stationMagnitudeID)
 =========================================== ================ ================================
 
-The event id is the event's ``publicID`` exactly as written (e.g.
-``smi:ch.ethz.sed/event/historical/1165``), except ObsPy's random ``smi:local/<uuid>/`` ids,
-which become their stable tail (:func:`~stations.readers._catalog.stable_event_id`). A station
+The event id is the last ``/``-separated segment of the event's ``publicID`` (e.g.
+``1165`` for ``smi:ch.ethz.sed/event/historical/1165``), the rule every reader follows
+(:func:`stations.schema.canonical_event_ids`), so a CSV of the same events names them alike;
+rejected rows keep the full ``publicID`` in their raw text. A station
 magnitude whose origin cannot be found (no ``originID`` match, no preferred origin, several
 origins) has no origin time and is rejected; so is one without a type, unless the network
 magnitude listing it in its contributions has one. A waveform id without a network code gets

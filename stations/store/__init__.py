@@ -28,7 +28,14 @@ re-reads the manifest.
 Re-ingesting equal values (:data:`~stations.schema.VALUE_COLUMNS`, NaN equal to NaN) adds
 nothing; a changed value is written as ``revision = previous + 1`` and the old row's position
 goes into the superseded index. The current view hides superseded positions;
-``all_revisions=True`` shows them. Data files are never modified.
+``all_revisions=True`` shows them. Data files are never modified. A reading that should not
+be there at all (e.g. one filed under a wrong channel code) is withdrawn by
+:meth:`~StationMagnitudeStore.retract`: a batch of its own that supersedes the position without
+writing a replacement, so the reading stays readable with ``all_revisions=True``.
+
+**Checksums.** Every file the store writes has its SHA-256 in the manifest (``checksums``),
+checked before a whole-file read, and Parquet page checksums, checked on every read; a damaged
+file is a one-line error naming it (:mod:`stations.store.checksums`, ``magfuse verify``).
 
 **Partitions.** A window scan opens only the files whose type matches and whose origin-time
 range (from the manifest) meets the window; a single-event look-up reads one row group of the
@@ -44,12 +51,13 @@ Examples
 """
 
 from stations.store.batch import CONFLICT_REASON
-from stations.store.store import IngestReport, StationMagnitudeStore, file_digest
+from stations.store.store import IngestReport, RetractReport, StationMagnitudeStore, file_digest
 from stations.store.summary import StoreSummary, TypeSummary
 
 __all__ = [
     "CONFLICT_REASON",
     "IngestReport",
+    "RetractReport",
     "StationMagnitudeStore",
     "StoreSummary",
     "TypeSummary",

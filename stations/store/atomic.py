@@ -58,11 +58,14 @@ def write_parquet_atomic(
 ) -> int:
     """Write ``table`` through ``schema`` to ``path`` atomically; return the file size in bytes.
 
-    The writer is opened with the declared schema (docs/conventions.md item 14), so its key-value
-    metadata (schema name and version) and the column types are exactly those of ``schema``.
+    The writer is opened with the declared schema, so its key-value metadata (schema name and
+    version) and the column types are exactly those of ``schema``. Every data page carries its
+    CRC-32 (Parquet page checksum), so a reader with verification on refuses a damaged page.
     """
     tmp = path.with_name(path.name + TMP_SUFFIX)
-    with pq.ParquetWriter(tmp, schema, compression=COMPRESSION, write_statistics=True) as writer:
+    with pq.ParquetWriter(
+        tmp, schema, compression=COMPRESSION, write_statistics=True, write_page_checksum=True
+    ) as writer:
         writer.write_table(table, row_group_size=row_group_size)
     _fsync_file(tmp)
     size = tmp.stat().st_size

@@ -29,17 +29,19 @@ from numpy.typing import NDArray
 
 from stations.schema import QUARANTINE_SCHEMA, RECORD_SCHEMA
 from stations.store.atomic import ensure_dir, write_parquet_atomic
+from stations.store.checksums import sha256_of
 from stations.store.layout import (
     OWNED_DIRS,
     data_path,
     index_path,
     quarantine_path,
 )
+from stations.store.links import inside
 from stations.store.manifest import BatchEntry, FileEntry, Manifest, save_manifest
 from stations.store.reading import (
     EVENT_INDEX_SCHEMA,
     SUPERSEDED_SCHEMA,
-    open_checked,
+    read_whole,
 )
 
 __all__ = ["ROW_GROUP_ROWS", "BatchCounts", "commit_batch", "sweep"]
@@ -75,6 +77,7 @@ class BatchCounts:
     duplicate: int
     revised: int
     quarantined: int
+    retracted: int = 0
 
 
 def _iso(ts: pa.Scalar) -> str:
@@ -116,8 +119,12 @@ def _write_data(
     *,
     batch_id: str,
     first_file_no: int,
+    sums: dict[str, str],
 ) -> tuple[list[FileEntry], pa.Table]:
-    """Write one file per partition; return the entries and the new event-index pairs."""
+    """Write one file per partition; return the entries and the new event-index pairs.
+
+    The SHA-256 of each file written goes into ``sums`` (relative path -> digest).
+    """
     entries: list[FileEntry] = []
     pairs: list[pa.Table] = []
     file_no = first_file_no
@@ -128,6 +135,7 @@ def _write_data(
         path = root / rel
         ensure_dir(path.parent, root)
         size = write_parquet_atomic(path, part, RECORD_SCHEMA, row_group_size=ROW_GROUP_ROWS)
+        sums[rel] = sha256_of(path)
         t_range = pc.min_max(part.column("origin_time"))
         e_range = pc.min_max(part.column("event_id"))
         entries.append(
@@ -168,17 +176,23 @@ def _rewrite_index(
     kind: str,
     generation: int,
     sort_keys: list[tuple[str, str]],
+    sums: dict[str, str],
+    old_digest: str | None = None,
 ) -> str:
-    """Write ``old`` index plus ``new_rows``, sorted, as generation ``generation``."""
+    """Write ``old`` index plus ``new_rows``, sorted, as generation ``generation``.
+
+    ``old`` is checked against ``old_digest`` first; the new file's SHA-256 goes into ``sums``.
+    """
     parts = [new_rows]
     if old is not None:
-        parts.insert(0, open_checked(root / old, schema).read())
+        parts.insert(0, read_whole(root / old, schema, digest=old_digest))
     table = pa.concat_tables([p.select(schema.names).cast(schema) for p in parts])
     table = table.take(pc.sort_indices(table, sort_keys=sort_keys))
     rel = index_path(kind, generation)
     path = root / rel
     ensure_dir(path.parent, root)
     write_parquet_atomic(path, table, schema, row_group_size=ROW_GROUP_ROWS)
+    sums[rel] = sha256_of(path)
     return rel
 
 
@@ -215,7 +229,10 @@ def commit_batch(
     full = full.select(RECORD_SCHEMA.names).cast(RECORD_SCHEMA)
     generation = manifest.generation + 1
 
-    entries, pairs = _write_data(root, full, batch_id=batch_id, first_file_no=manifest.next_file_no)
+    sums: dict[str, str] = {}
+    entries, pairs = _write_data(
+        root, full, batch_id=batch_id, first_file_no=manifest.next_file_no, sums=sums
+    )
     _checkpoint("data_written")
 
     q_rel: str | None = None
@@ -228,6 +245,7 @@ def commit_batch(
         q_rel = quarantine_path(batch_id)
         ensure_dir((root / q_rel).parent, root)
         write_parquet_atomic(root / q_rel, q, QUARANTINE_SCHEMA, row_group_size=ROW_GROUP_ROWS)
+        sums[q_rel] = sha256_of(root / q_rel)
         _checkpoint("quarantine_written")
 
     retired: list[str] = []
@@ -241,6 +259,8 @@ def commit_batch(
             "events",
             generation,
             [("event_id", "ascending"), ("file_no", "ascending")],
+            sums,
+            manifest.checksum(manifest.event_index) if manifest.event_index else None,
         )
         if manifest.event_index:
             retired.append(manifest.event_index)
@@ -261,6 +281,8 @@ def commit_batch(
             "superseded",
             generation,
             [("file_no", "ascending"), ("row", "ascending")],
+            sums,
+            manifest.checksum(manifest.superseded_index) if manifest.superseded_index else None,
         )
         if manifest.superseded_index:
             retired.append(manifest.superseded_index)
@@ -284,6 +306,7 @@ def commit_batch(
         quarantined=counts.quarantined,
         file_nos=tuple(e.file_no for e in entries),
         quarantine_path=q_rel,
+        retracted=counts.retracted,
     )
     new = Manifest(
         generation=generation,
@@ -293,7 +316,10 @@ def commit_batch(
         event_index=event_index,
         superseded_index=superseded_index,
         retired_index=tuple(retired),
+        checksums={**manifest.checksums, **sums},
     )
+    kept = new.referenced_paths()
+    new = dataclasses.replace(new, checksums={k: v for k, v in new.checksums.items() if k in kept})
     save_manifest(root, new)
     _checkpoint("committed")
     return new
@@ -313,14 +339,17 @@ def sweep(root: Path, manifest: Manifest) -> list[str]:
     """
     keep = {(p.split("/", 1)[0], p.rsplit("/", 1)[-1]) for p in manifest.referenced_paths()}
     removed: list[str] = []
+    real_root = Path(os.path.realpath(root))
     for top in OWNED_DIRS:
         base = root / top
-        if not base.is_dir():
+        if not base.is_dir() or not inside(base, real_root):
             continue
         for dirpath, _dirs, names in os.walk(base):
             for name in names:
                 if (top, name) not in keep:
                     path = Path(dirpath) / name
+                    if path.is_symlink() or not inside(path, real_root):
+                        continue  # never delete through a link (stations.store.links)
                     path.unlink(missing_ok=True)
                     removed.append(path.relative_to(root).as_posix())
     return removed

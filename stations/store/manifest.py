@@ -10,6 +10,7 @@ counters such as ``superseded`` may change while the data files themselves never
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -83,6 +84,7 @@ class BatchEntry:
     quarantined: int
     file_nos: tuple[int, ...]
     quarantine_path: str | None
+    retracted: int = 0  # readings withdrawn by 'magfuse retract' (no new row written)
 
 
 @dataclass(frozen=True, slots=True)
@@ -90,7 +92,10 @@ class Manifest:
     """The committed state of a store (see module docstring).
 
     ``retired_index`` lists the index files of the previous generation; they are kept one more
-    commit so that a reader holding the previous manifest can still open them.
+    commit so that a reader holding the previous manifest can still open them. ``checksums``
+    maps the path of every file written by this magfuse (data, quarantine, index) to the
+    SHA-256 of its bytes (:mod:`stations.store.checksums`); a store written before checksums
+    existed has none for its older files.
     """
 
     generation: int = 0
@@ -102,6 +107,7 @@ class Manifest:
     retired_index: tuple[str, ...] = ()
     schema_version: str = SCHEMA_VERSION
     layout_version: int = LAYOUT_VERSION
+    checksums: Mapping[str, str] = field(default_factory=dict)
     _by_no: dict[int, FileEntry] = field(
         default_factory=dict, init=False, repr=False, compare=False
     )
@@ -134,6 +140,10 @@ class Manifest:
         """The entry of file number ``file_no``."""
         return self._by_no[file_no]
 
+    def checksum(self, path: str) -> str | None:
+        """The recorded SHA-256 of ``path`` (relative, POSIX), or None if none was recorded."""
+        return self.checksums.get(path)
+
     def referenced_paths(self) -> set[str]:
         """Every path the store must keep: data, quarantine, current and retired index files."""
         paths = {f.path for f in self.files}
@@ -155,6 +165,7 @@ class Manifest:
             "retired_index": list(self.retired_index),
             "batches": [asdict(b) for b in self.batches],
             "files": [asdict(f) for f in self.files],
+            "checksums": dict(sorted(self.checksums.items())),
         }
         return json.dumps(doc, sort_keys=True, indent=1).encode("utf-8")
 
@@ -187,6 +198,7 @@ def _parse(doc: Any, where: Path) -> Manifest:
             event_index=doc["event_index"],
             superseded_index=doc["superseded_index"],
             retired_index=tuple(doc["retired_index"]),
+            checksums={str(k): str(v) for k, v in dict(doc.get("checksums", {})).items()},
         )
     except (KeyError, TypeError, ValueError) as exc:
         raise StoreCorruptError(

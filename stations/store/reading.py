@@ -20,6 +20,7 @@ from numpy.typing import NDArray
 
 from stations.errors import StoreCorruptError
 from stations.schema import check_schema
+from stations.store.checksums import check_digest, damaged
 
 __all__ = [
     "EVENT_INDEX_SCHEMA",
@@ -31,6 +32,7 @@ __all__ = [
     "open_checked",
     "position_keys",
     "read_rows",
+    "read_whole",
 ]
 
 #: Column names of the row position added to tables read from data files.
@@ -68,20 +70,26 @@ def position_keys(file_no: NDArray[np.integer], row: NDArray[np.integer]) -> NDA
     return (np.asarray(file_no, dtype=np.int64) << _ROW_BITS) + np.asarray(row, dtype=np.int64)
 
 
-def open_checked(path: Path, schema: pa.Schema, *, index: bool = False) -> pq.ParquetFile:
+def open_checked(
+    path: Path, schema: pa.Schema, *, index: bool = False, digest: str | None = None
+) -> pq.ParquetFile:
     """Open a committed Parquet file and check its columns against ``schema``.
+
+    Page checksums are verified on every later read of the file; with ``digest`` the SHA-256
+    of the whole file is compared first (:mod:`stations.store.checksums`).
 
     Raises
     ------
     IndexGoneError
         If ``index`` and the file no longer exists (a reader on an old manifest).
     StoreCorruptError
-        If the file is missing or is not readable Parquet.
+        If the file is missing, damaged (checksum) or is not readable Parquet.
     SchemaError
         If a column is missing or has another type (names the file and the column).
     """
     try:
-        pf = pq.ParquetFile(path)
+        check_digest(path, digest)
+        pf = pq.ParquetFile(path, page_checksum_verification=True)
     except FileNotFoundError:
         if index:
             raise IndexGoneError(str(path)) from None
@@ -89,11 +97,35 @@ def open_checked(path: Path, schema: pa.Schema, *, index: bool = False) -> pq.Pa
             f"{path}: listed in the manifest but missing; restore it from a backup"
         ) from None
     except (pa.ArrowException, OSError) as exc:
-        raise StoreCorruptError(
-            f"{path}: not a readable Parquet file ({exc}); restore it from a backup"
-        ) from None
+        raise damaged(path, f"not a readable Parquet file: {str(exc).splitlines()[0]}") from None
     check_schema(pf.schema_arrow, schema, where=str(path))
     return pf
+
+
+def read_whole(
+    path: Path,
+    schema: pa.Schema,
+    *,
+    index: bool = False,
+    digest: str | None = None,
+    row_groups: Sequence[int] | None = None,
+    columns: Sequence[str] | None = None,
+) -> pa.Table:
+    """Read a committed file (or some of its row groups) with every check of :func:`open_checked`.
+
+    Raises
+    ------
+    IndexGoneError, StoreCorruptError, SchemaError
+        As :func:`open_checked`; a page whose checksum fails is a ``StoreCorruptError``.
+    """
+    pf = open_checked(path, schema, index=index, digest=digest)
+    cols = None if columns is None else list(columns)
+    try:
+        if row_groups is None:
+            return pf.read(columns=cols)
+        return pf.read_row_groups(list(row_groups), columns=cols)
+    except (pa.ArrowException, OSError) as exc:
+        raise damaged(path, f"a page cannot be read: {str(exc).splitlines()[0]}") from None
 
 
 def candidate_row_groups(
@@ -131,6 +163,7 @@ def read_rows(
     *,
     columns: Sequence[str] | None = None,
     event_ids: NDArray[np.object_] | None = None,
+    where: Path | None = None,
 ) -> pa.Table:
     """Read a data file (or only the rows of ``event_ids``) with its row positions.
 
@@ -145,6 +178,8 @@ def read_rows(
     event_ids : ndarray of str, optional
         Sorted, unique event ids; only row groups that may hold them are read and only their
         rows are returned.
+    where : Path, optional
+        The file's path, named when a page is damaged.
 
     Returns
     -------
@@ -167,7 +202,12 @@ def read_rows(
             table = table.select(read_cols)
         rows = np.zeros(0, dtype=np.int64)
     else:
-        table = pf.read_row_groups(groups, columns=read_cols)
+        try:
+            table = pf.read_row_groups(groups, columns=read_cols)
+        except (pa.ArrowException, OSError) as exc:
+            raise damaged(
+                where or Path("a data file"), f"a page cannot be read: {str(exc).splitlines()[0]}"
+            ) from None
         rows = np.concatenate([np.arange(starts[g], starts[g] + sizes[g]) for g in groups])
     if event_ids is not None and table.num_rows:
         keep = pc.is_in(table.column("event_id"), value_set=pa.array(event_ids, pa.string()))

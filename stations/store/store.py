@@ -16,16 +16,31 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from stations.errors import ConfigError, SchemaError, StoreCorruptError
+from stations.errors import (
+    ConfigError,
+    EventNotFoundError,
+    NearDuplicateEventError,
+    SchemaError,
+    StoreCorruptError,
+)
 from stations.schema import (
     INPUT_COLUMNS,
     QUARANTINE_SCHEMA,
     RECORD_SCHEMA,
     SCHEMA_VERSION,
+    canonical_event_ids,
     normalise_magnitude_type,
 )
-from stations.store.batch import collapse, compare, records_table, rejected_table, screen
+from stations.store.batch import (
+    INPUT_SCHEMA,
+    collapse,
+    compare,
+    records_table,
+    rejected_table,
+    screen,
+)
 from stations.store.commit import BatchCounts, commit_batch, sweep
+from stations.store.duplicates import NEAR_SECONDS, distinct_events, near_duplicates
 from stations.store.layout import (
     LOCK_NAME,
     MANIFEST_NAME,
@@ -34,6 +49,7 @@ from stations.store.layout import (
     TMP_SUFFIX,
     new_batch_id,
 )
+from stations.store.links import check_no_outside_links
 from stations.store.lock import WriteLock
 from stations.store.manifest import FileEntry, Manifest, load_manifest, save_manifest
 from stations.store.reading import (
@@ -46,15 +62,19 @@ from stations.store.reading import (
     open_checked,
     position_keys,
     read_rows,
+    read_whole,
 )
 from stations.store.summary import StoreSummary, TypeSummary
+from stations.store.verify import Problem, verify_manifest
 
-__all__ = ["IngestReport", "StationMagnitudeStore", "file_digest"]
+__all__ = ["IngestReport", "RetractReport", "StationMagnitudeStore", "file_digest"]
 
 _T = TypeVar("_T")
 #: Times a reader re-reads the manifest when an index file it named was retired meanwhile.
 _READ_RETRIES: Final = 5
 _UTC_US = pa.timestamp("us", tz="UTC")
+#: Rows a batch writes: the input columns and the revision (none for a retraction).
+INPUT_SCHEMA_WITH_REVISION = INPUT_SCHEMA.append(pa.field("revision", pa.int32(), nullable=False))
 
 
 def file_digest(path: Path, *, chunk_bytes: int = 1 << 20) -> str:
@@ -64,6 +84,28 @@ def file_digest(path: Path, *, chunk_bytes: int = 1 << 20) -> str:
         while block := fh.read(chunk_bytes):
             h.update(block)
     return f"sha256:{h.hexdigest()}"
+
+
+@dataclass(frozen=True, slots=True)
+class RetractReport:
+    """What :meth:`StationMagnitudeStore.retract` withdrew.
+
+    Attributes
+    ----------
+    batch_id : str
+        The retraction's batch.
+    event_id, station_id, magnitude_type : str
+    channel : str or None
+    revision : int
+        Revision of the withdrawn reading (still readable with ``all_revisions``).
+    """
+
+    batch_id: str
+    event_id: str
+    station_id: str
+    magnitude_type: str
+    channel: str | None
+    revision: int
 
 
 @dataclass(frozen=True, slots=True)
@@ -91,6 +133,8 @@ class IngestReport:
         Set when a committed batch had the same ``content_hash``: nothing was written, all
         records count as duplicates (their rejected rows are already quarantined with that
         batch).
+    no_rows : bool
+        True when the file held no rows at all (e.g. only a header): no batch is created.
     """
 
     source_file: str
@@ -100,6 +144,7 @@ class IngestReport:
     revised: int
     quarantined: int
     same_content_as: str | None = None
+    no_rows: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         """Plain dict of the fields."""
@@ -176,7 +221,9 @@ class StationMagnitudeStore:
         ------
         StoreCorruptError
             If ``root`` holds no store and ``create`` is false, if ``root`` is a file, if it is
-            a non-empty folder that is not a store, or if the manifest is unreadable.
+            a non-empty folder that is not a store, if any entry below it is a symbolic link
+            pointing outside the store (:mod:`stations.store.links`), or if the manifest is
+            unreadable.
         SchemaError
             If the store was written with another schema version.
         """
@@ -184,6 +231,7 @@ class StationMagnitudeStore:
         if root.exists() and not root.is_dir():
             raise StoreCorruptError(f"{root}: is a file, not a store folder; pass a folder")
         store = cls(root, lock_timeout_s=lock_timeout_s)
+        check_no_outside_links(root)
         if not (root / MANIFEST_NAME).exists() and create:
             store._create()
         load_manifest(root)  # checks format and schema version
@@ -315,8 +363,12 @@ class StationMagnitudeStore:
     def _superseded_keys(self, m: Manifest, file_nos: Sequence[int]) -> np.ndarray:
         if m.superseded_index is None or not file_nos:
             return np.zeros(0, np.int64)
-        pf = open_checked(self.root / m.superseded_index, SUPERSEDED_SCHEMA, index=True)
-        table = pf.read()
+        table = read_whole(
+            self.root / m.superseded_index,
+            SUPERSEDED_SCHEMA,
+            index=True,
+            digest=m.checksum(m.superseded_index),
+        )
         keep = pc.is_in(table.column("file_no"), value_set=pa.array(file_nos, pa.int32()))
         table = table.filter(keep)
         return position_keys(table.column("file_no").to_numpy(), table.column("row").to_numpy())
@@ -331,16 +383,24 @@ class StationMagnitudeStore:
 
     def _read_files(
         self,
+        m: Manifest,
         files: list[FileEntry],
         columns: list[str] | None,
         event_ids: np.ndarray | None = None,
     ) -> pa.Table:
+        # A whole-file read checks the file's SHA-256 first; a look-up of a few events reads
+        # only some row groups and relies on their page checksums (stations.store.checksums).
         tables = [
             read_rows(
-                open_checked(self.root / f.path, RECORD_SCHEMA),
+                open_checked(
+                    self.root / f.path,
+                    RECORD_SCHEMA,
+                    digest=m.checksum(f.path) if event_ids is None else None,
+                ),
                 f.file_no,
                 columns=columns,
                 event_ids=event_ids,
+                where=self.root / f.path,
             )
             for f in files
         ]
@@ -388,7 +448,7 @@ class StationMagnitudeStore:
             read_cols = None
             if cols is not None:
                 read_cols = cols + (["origin_time"] if "origin_time" not in cols else [])
-            table = self._read_files(files, read_cols)
+            table = self._read_files(m, files, read_cols)
             if lo is not None or hi is not None:
                 t = table.column("origin_time").cast(pa.int64())
                 mask = pa.array(np.ones(table.num_rows, bool))
@@ -418,7 +478,8 @@ class StationMagnitudeStore:
         the row groups whose event-id range contains it. Rows are sorted by magnitude type,
         station, channel and revision.
         """
-        ids = np.array([str(event_id)], dtype=object)
+        # the same id rule as ingest, so a full QuakeML resource id finds the event too
+        ids = np.array([canonical_event_ids(pa.array([str(event_id)]))[0].as_py()], dtype=object)
 
         def run(m: Manifest) -> pa.Table:
             file_nos = self._files_of_events(m, ids)
@@ -426,7 +487,7 @@ class StationMagnitudeStore:
             if magnitude_type is not None:
                 wanted = _check_type(magnitude_type)
                 files = [f for f in files if f.magnitude_type == wanted]
-            table = self._read_files(files, None, ids)
+            table = self._read_files(m, files, None, ids)
             if not all_revisions:
                 table = self._drop_superseded(m, table, files)
             return table
@@ -447,11 +508,12 @@ class StationMagnitudeStore:
         """File numbers holding rows of any of ``ids_sorted`` (sorted unique event ids)."""
         if m.event_index is None or ids_sorted.size == 0:
             return []
-        pf = open_checked(self.root / m.event_index, EVENT_INDEX_SCHEMA, index=True)
+        path = self.root / m.event_index
+        pf = open_checked(path, EVENT_INDEX_SCHEMA, index=True)
         groups = candidate_row_groups(pf, "event_id", ids_sorted)
         if not groups:
             return []
-        table = pf.read_row_groups(groups)
+        table = read_whole(path, EVENT_INDEX_SCHEMA, index=True, row_groups=groups)
         keep = pc.is_in(table.column("event_id"), value_set=pa.array(ids_sorted, pa.string()))
         nos = pc.unique(table.filter(keep).column("file_no")).to_numpy()
         return [int(x) for x in np.sort(nos)]
@@ -460,7 +522,11 @@ class StationMagnitudeStore:
         """Every quarantined row (columns of :data:`~stations.schema.QUARANTINE_SCHEMA`)."""
         m = self.manifest()
         tables = [
-            open_checked(self.root / b.quarantine_path, QUARANTINE_SCHEMA).read()
+            read_whole(
+                self.root / b.quarantine_path,
+                QUARANTINE_SCHEMA,
+                digest=m.checksum(b.quarantine_path),
+            )
             for b in m.batches
             if b.quarantine_path
         ]
@@ -478,7 +544,7 @@ class StationMagnitudeStore:
             st_parts: list[pa.ChunkedArray] = []
             for mtype in sorted({f.magnitude_type for f in m.files}):
                 files = [f for f in m.files if f.magnitude_type == mtype]
-                table = self._read_files(files, cols)
+                table = self._read_files(m, files, cols)
                 revised = int(pc.sum(pc.greater(table.column("revision"), 1)).as_py() or 0)
                 cur = self._drop_superseded(m, table, files)
                 detected = int(pc.sum(cur.column("detected")).as_py() or 0)
@@ -523,6 +589,14 @@ class StationMagnitudeStore:
 
         return self._with_manifest(run)
 
+    def verify(self) -> tuple[int, list[Problem]]:
+        """Check every file the manifest lists against its checksum and read every page.
+
+        Returns the number of files checked and the damaged or missing ones
+        (:func:`stations.store.verify.verify_manifest`).
+        """
+        return verify_manifest(self.root, self.manifest())
+
     # -- writing ---------------------------------------------------------------------------
     def _current_rows(self, m: Manifest, unique: pa.Table) -> pa.Table:
         """Current rows of the events of ``unique`` (input columns, revision, positions)."""
@@ -534,7 +608,7 @@ class StationMagnitudeStore:
             raise StoreCorruptError(
                 f"{exc}: event index listed in the manifest is missing; restore it from a backup"
             ) from None
-        table = self._read_files(files, [*INPUT_COLUMNS, "revision"], ids)
+        table = self._read_files(m, files, [*INPUT_COLUMNS, "revision"], ids)
         try:
             return self._drop_superseded(m, table, files)
         except IndexGoneError as exc:
@@ -542,6 +616,123 @@ class StationMagnitudeStore:
                 f"{exc}: superseded index listed in the manifest is missing; restore it from a "
                 "backup"
             ) from None
+
+    def retract(
+        self,
+        event_id: str,
+        station_id: str,
+        *,
+        magnitude_type: str,
+        channel: str | None = None,
+        reason: str,
+        on_wait: Callable[[str], None] | None = None,
+    ) -> RetractReport:
+        """Withdraw the current reading of one station for one event (e.g. a wrong channel).
+
+        The reading leaves the current view, as if a later revision had replaced it with
+        nothing; it stays readable with ``all_revisions=True`` and the retraction is a batch
+        of its own in the manifest (source ``retract: <reason>``). Nothing is deleted.
+
+        Parameters
+        ----------
+        event_id, station_id : str
+            The reading's event and FDSN ``NET.STA.LOC`` station id.
+        magnitude_type : str
+            Its magnitude type.
+        channel : str, optional
+            Its channel code; may be omitted when the station has one current reading of that
+            type for the event.
+        reason : str
+            Why, recorded with the batch.
+
+        Raises
+        ------
+        EventNotFoundError
+            If no current reading matches; the message lists the station's channels.
+        ConfigError
+            If ``channel`` is omitted and the station has several current readings.
+        """
+        mtype = _check_type(magnitude_type)
+        ev = canonical_event_ids(pa.array([str(event_id)]))[0].as_py()
+        sta = str(station_id).strip().upper()
+        if not reason.strip():
+            raise ConfigError("retract needs a reason (--reason TEXT), recorded with the batch")
+        with self._lock.hold(on_wait):
+            m = load_manifest(self.root)
+            sweep(self.root, m)
+            probe = pa.table({"event_id": pa.array([ev], pa.string())})
+            cur = self._current_rows(m, probe).to_pandas()
+            cur = cur[(cur["station_id"] == sta) & (cur["magnitude_type"] == mtype)]
+            chans = sorted(str(c) if c is not None and c == c else "(none)" for c in cur["channel"])
+            if channel is not None:
+                want = channel.strip().upper()
+                cur = cur[cur["channel"].fillna("").str.upper() == want]
+            if cur.empty:
+                raise EventNotFoundError(
+                    f"no current {mtype} reading of station {sta} for event {ev!r}"
+                    + (f" on channel {channel!r}" if channel is not None else "")
+                    + (f"; its channels: {', '.join(chans)}" if chans else "")
+                    + "; check the ids with 'magfuse event'"
+                )
+            if len(cur) > 1:
+                raise ConfigError(
+                    f"station {sta} has {len(cur)} current {mtype} readings for event {ev!r} "
+                    f"(channels {', '.join(chans)}); name one with --channel"
+                )
+            gone = position_keys(cur[FILE_NO].to_numpy(), cur[ROW].to_numpy())
+            now = datetime.now(UTC)
+            batch_id = new_batch_id(now)
+            commit_batch(
+                self.root,
+                m,
+                batch_id=batch_id,
+                now=now,
+                source_file=f"retract: {reason.strip()}",
+                content_hash=None,
+                rows=INPUT_SCHEMA_WITH_REVISION.empty_table(),
+                quarantine=rejected_table(None, "retract"),
+                superseded=gone,
+                counts=BatchCounts(0, 0, 0, 0, retracted=1),
+            )
+        channel_text = cur["channel"].iloc[0]
+        return RetractReport(
+            batch_id,
+            ev,
+            sta,
+            mtype,
+            channel_text if channel_text == channel_text else None,
+            int(cur["revision"].iloc[0]),
+        )
+
+    def _refuse_near_duplicates(self, m: Manifest, unique: pa.Table, source_file: str) -> None:
+        """Raise if a batch event coincides with a stored event under another id."""
+        cols = ["event_id", "origin_time", "event_latitude", "event_longitude"]
+        batch = distinct_events(unique.select(cols).to_pandas())
+        if batch.empty or not m.files:
+            return
+        tol = int(NEAR_SECONDS * 1e6)
+        lo, hi = int(batch["t_us"].min()) - tol, int(batch["t_us"].max()) + tol
+        r = m.file_ranges()
+        keep = (r["max_us"] >= lo) & (r["min_us"] <= hi)
+        files = [m.files[i] for i in np.flatnonzero(keep)]
+        if not files:
+            return
+        table = self._read_files(m, files, cols)
+        t = table.column("origin_time").cast(pa.int64())
+        table = table.filter(pc.and_(pc.greater_equal(t, lo), pc.less_equal(t, hi)))
+        found = near_duplicates(batch, distinct_events(table.select(cols).to_pandas()))
+        if not found:
+            return
+        first = found[0]
+        where = "" if first.km is None else f", {first.km:.1f} km"
+        more = len({f.new_id for f in found}) - 1
+        raise NearDuplicateEventError(
+            f"{source_file}: event {first.new_id!r} coincides with stored event "
+            f"{first.stored_id!r} ({first.seconds:.2f} s{where} apart)"
+            + (f", and {more} more event(s) likewise" if more else "")
+            + "; the same event under two ids would count twice. Use the stored ids in the "
+            "file, or ingest with --allow-near-duplicates if they are different events"
+        )
 
     def ingest(
         self,
@@ -551,6 +742,7 @@ class StationMagnitudeStore:
         source_file: str,
         content_hash: str | None = None,
         on_wait: Callable[[str], None] | None = None,
+        check_near_duplicates: bool = False,
     ) -> IngestReport:
         """Add one batch: a reader's accepted ``records`` and ``rejected`` rows of one file.
 
@@ -575,6 +767,12 @@ class StationMagnitudeStore:
             hash, nothing is written and the report says which batch it was.
         on_wait : callable, optional
             Receives one message if the ingest has to wait for another writer.
+        check_near_duplicates : bool, default=False
+            Refuse the batch if one of its events coincides in origin time and epicentre with
+            a stored event under another id (:mod:`stations.store.duplicates`). Every file
+            ingest (:func:`stations.ingest.ingest_file`, so ``magfuse ingest`` and the nightly
+            run) turns it on unless the operator allows near duplicates; callers that write
+            rows of events already stored (recomputation, tests) leave it off.
 
         Returns
         -------
@@ -582,6 +780,9 @@ class StationMagnitudeStore:
 
         Raises
         ------
+        NearDuplicateEventError
+            If ``check_near_duplicates`` and an event of the batch coincides with a stored
+            event under another id; nothing is written.
         SchemaError
             If ``records`` lacks a column or a column cannot take its declared type.
         StoreBusyError
@@ -589,6 +790,8 @@ class StationMagnitudeStore:
         """
         table = records_table(records, source_file)
         rejected_rows = rejected_table(rejected, source_file)
+        if table.num_rows == 0 and rejected_rows.num_rows == 0:
+            return IngestReport(source_file, None, 0, 0, 0, 0, no_rows=True)
         kept, screened = screen(table)
         collapsed = collapse(kept)
         with self._lock.hold(on_wait):
@@ -600,6 +803,8 @@ class StationMagnitudeStore:
                             source_file, None, 0, table.num_rows, 0, 0, same_content_as=b.batch_id
                         )
             sweep(self.root, m)
+            if check_near_duplicates:
+                self._refuse_near_duplicates(m, collapsed.unique, source_file)
             current = self._current_rows(m, collapsed.unique)
             cmp = compare(collapsed.unique, current)
             quarantine = pa.concat_tables([rejected_rows, screened, collapsed.conflicts])

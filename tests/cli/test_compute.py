@@ -92,3 +92,26 @@ def test_compute_with_unknown_table_is_a_one_line_error(tmp_path: Path) -> None:
     )
     assert result.exit_code == 1
     assert result.stderr.startswith("Error: ML distance correction 'XYZ' is neither one of")
+
+
+def test_recompute_that_changes_nothing_beyond_stored_precision_writes_nothing(
+    tmp_path: Path,
+) -> None:
+    """The demo CSV gives ML to 3 decimals, computed with HB87 from the amplitudes it also
+    gives; recomputing with HB87 changes them by less than 0.0005 and must write nothing."""
+    from tests.cli.conftest import demo_slice
+
+    csv = demo_slice(tmp_path / "jan.csv", end="2025-01-10")
+    store = tmp_path / "store"
+    runner = CliRunner()
+    assert runner.invoke(app, ["ingest", str(csv), "--store", str(store)]).exit_code == 0
+    before = StationMagnitudeStore.open(store).summary()
+    stations = Path(__file__).parents[2] / "sample_events" / "stations.csv"
+    result = runner.invoke(
+        app, ["compute", "--type", "ML", "--store", str(store), "--stations", str(stations)]
+    )
+    assert result.exit_code == 0, result.output
+    assert "0 changed (new revision)" in result.stdout
+    assert "nothing written" in result.stdout
+    after = StationMagnitudeStore.open(store).summary()
+    assert (after.batches, after.rows_all) == (before.batches, before.rows_all)

@@ -66,3 +66,35 @@ def test_config_is_frozen() -> None:
     cfg = MagfuseConfig()
     with pytest.raises(ValueError, match="frozen"):
         cfg.learn.half_life_days = 10.0  # type: ignore[misc]
+
+
+@pytest.mark.parametrize(
+    ("text", "key"),
+    [
+        ('[learn]\nhalf_life_days = "30"\n', "learn.half_life_days"),
+        ('[censoring]\nenabled = "yes"\n', "censoring.enabled"),
+        ("[pairs]\nmin_shared_events = 30.5\n", "pairs.min_shared_events"),
+        ("[learn]\nmagnitude_type = 3\n", "learn.magnitude_type"),
+        ('[compute]\nmb_bb_period_range_s = ["0.2", "30"]\n', "compute.mb_bb_period_range_s"),
+    ],
+)
+def test_values_of_the_wrong_type_are_errors_not_converted(
+    tmp_path: Path, text: str, key: str
+) -> None:
+    path = tmp_path / "c.toml"
+    path.write_text(text)
+    with pytest.raises(ConfigError, match=key.replace(".", r"\.") + "(\\.[0-9])?': Input should"):
+        load_config(path)
+
+
+def test_integer_for_a_decimal_setting_is_accepted(tmp_path: Path) -> None:
+    """TOML writes 30 and 30.0 differently; an operator means the same number."""
+    path = tmp_path / "c.toml"
+    path.write_text(
+        "[learn]\nhalf_life_days = 30\n[compute]\nmb_bb_period_range_s = [1, 20]\n"
+        '[store]\npath = "somewhere"\n'
+    )
+    cfg = load_config(path)
+    assert cfg.learn.half_life_days == 30.0
+    assert cfg.compute.mb_bb_period_range_s == (1.0, 20.0)
+    assert cfg.store.path == Path("somewhere")

@@ -274,3 +274,25 @@ def test_large_frame_is_validated_by_array_passes() -> None:
     assert len(records) == n - bad.shape[0]
     assert len(rejected) == bad.shape[0]
     assert elapsed < 5.0
+
+
+def test_origin_time_outside_plausible_years_is_rejected_with_its_reason() -> None:
+    """Origin years 9999 and 1850 are typing errors; 1967 (the ISC bulletin bundled with
+    obspy) and a time a few hours from now are kept."""
+    now = np.datetime64("now", "us")
+    times = np.array(
+        [
+            np.datetime64("1967-01-30T01:20:28"),
+            np.datetime64("9999-05-01T12:00:00"),
+            np.datetime64("1850-05-01T12:00:00"),
+            now + np.timedelta64(3, "h"),
+        ],
+        dtype="datetime64[us]",
+    )
+    frame = pd.DataFrame([_row(source_location=f"line {i + 2}") for i in range(4)])
+    frame["origin_time"] = times
+    records, rejected = validate_records(frame, source_file="f.csv", raw=json_rows(frame))
+    assert len(records) == 2
+    assert rejected["source_location"].tolist() == ["line 3", "line 4"]
+    assert rejected["reason"].iloc[0].startswith("origin time 9999-05-01T12:00:00Z is outside")
+    assert "1850-05-01T12:00:00Z" in rejected["reason"].iloc[1]

@@ -110,3 +110,19 @@ def test_kill_during_adopt_leaves_one_active_version(tmp_path: Path) -> None:
     before = ModelRegistry(tmp_path).active_id("ML")
     previous = ModelRegistry(tmp_path).rollback("ML").version_id
     assert previous != before
+
+
+def test_damaged_model_table_is_refused_on_load_naming_the_file(tmp_path: Path) -> None:
+    from stations.errors import StoreCorruptError
+
+    reg = ModelRegistry(tmp_path)
+    v = reg.save(_params(), {"window": "w1"})
+    units = v.path / "units.parquet"
+    raw = bytearray(units.read_bytes())
+    mid = len(raw) // 2
+    raw[mid : mid + 8] = bytes(8)
+    units.write_bytes(bytes(raw))
+    with pytest.raises(StoreCorruptError, match=rf"^{units}: damaged"):
+        reg.load_parameters(v.version_id)
+    checked, problems = reg.verify()
+    assert checked >= 3 and [p.path.rsplit("/", 1)[-1] for p in problems] == ["units.parquet"]

@@ -178,3 +178,37 @@ def test_garbled_origin_date_names_the_line(tmp_path: Path) -> None:
         MalformedFileError, match=r"garbled\.isf: cannot be read as IMS10BULLETIN at line 15 "
     ):
         read_ims10(path)
+
+
+def test_bulletin_without_stop_line_is_rejected_naming_its_last_line(tmp_path: Path) -> None:
+    """19670130012028.isf: line 294 is 'STOP', line 295 blank; without them it was cut short
+    and the error names its last non-blank line."""
+    lines = _sample("19670130012028.isf").read_text(encoding="latin-1").splitlines()
+    assert lines[293] == "STOP" and not lines[294].strip()
+    path = tmp_path / "cut.isf"
+    path.write_text("\n".join(lines[:293]) + "\n", encoding="latin-1")
+    last = max(i for i in range(293) if lines[i].strip()) + 1
+    with pytest.raises(
+        MalformedFileError, match=rf"cut\.isf: .*no closing STOP line .*ends at line {last}:"
+    ):
+        read_ims10(path)
+
+
+def test_bulletin_cut_at_every_line_boundary_is_refused_in_one_line(tmp_path: Path) -> None:
+    """ipe202409sel_ims.txt (62 lines, ends with STOP) cut after each of its lines 1-61 and
+    ingested through the command line: one 'Error:' line per file, nothing stored."""
+    from tests.cli.conftest import invoke
+
+    lines = _sample("ipe202409sel_ims.txt").read_text(encoding="utf-8").splitlines(keepends=True)
+    assert lines[-1].strip() == "STOP"
+    paths = []
+    for n in range(1, len(lines)):
+        path = tmp_path / f"cut{n:02d}.txt"
+        path.write_text("".join(lines[:n]), encoding="utf-8")
+        paths.append(path)
+    res = invoke("ingest", *paths, "--store", tmp_path / "store")
+    assert res.exit_code == 1
+    assert "Traceback" not in res.stderr
+    errors = [line for line in res.stderr.splitlines() if line.startswith("Error: ")]
+    assert len(errors) == len(paths), res.stderr
+    assert "accepted" not in res.stdout
