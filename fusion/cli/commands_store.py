@@ -83,7 +83,12 @@ def _ingest_one(
     default_network: str | None,
 ) -> _Outcome:
     """Read and store one file; per-file problems become an error line, store problems raise."""
-    from stations.errors import MagfuseError, StoreBusyError, StoreCorruptError
+    from stations.errors import (
+        MagfuseError,
+        StoreBusyError,
+        StoreCorruptError,
+        StoreWriteError,
+    )
     from stations.ingest import ingest_file
 
     size = _size(path)
@@ -99,7 +104,7 @@ def _ingest_one(
             on_wait=lambda msg: typer.echo(msg, err=True),
         )
         advance(2 * size)
-    except (StoreBusyError, StoreCorruptError):
+    except (StoreBusyError, StoreCorruptError, StoreWriteError):
         raise
     except MagfuseError as exc:
         return _Outcome(f"Error: {exc}", True)

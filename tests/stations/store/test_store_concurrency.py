@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 import stations.store.commit as commit_mod
+import stations.store.lock as lock_mod
 from stations.errors import StoreBusyError
 from stations.store import StationMagnitudeStore
 from tests.stations.store.store_frames import random_records, records
@@ -94,13 +95,13 @@ def test_second_writer_times_out_with_one_message(tmp_path: Path) -> None:
             other.ingest(frame, None, source_file="x.csv", on_wait=messages.append)
         waited = time.monotonic() - t0
     root = tmp_path / "store"
+    holder_name = f"another magfuse process (pid {os.getpid()}, command {lock_mod._command})"
     assert str(err.value) == (
-        f"{root}: another writer (pid {os.getpid()}) still holds the store lock after 0.3 s; "
-        "run again when it has finished, or raise [store] lock_timeout_s"
+        f"{root} is busy: {holder_name} holds its writer lock; try again later (waited 0.3 s; "
+        "[store] lock_timeout_s sets the wait)"
     )
     assert messages == [
-        f"{root}: waiting up to 0.3 s for another writer (pid {os.getpid()}) to release the "
-        "store lock"
+        f"{root}: waiting up to 0.3 s for {holder_name} to release the store's writer lock"
     ]
     assert 0.3 <= waited < 2.0
     assert other.summary().batches == 0  # nothing half-written
