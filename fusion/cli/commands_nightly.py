@@ -101,8 +101,9 @@ def _check_exists(root: Path, inbox: Path, *, create: bool) -> None:
         return
     if not (root / "manifest.json").exists():
         raise StoreCorruptError(
-            f"{root}: no magfuse store here; pass the right --store, create one with "
-            "'magfuse ingest FILE --store DIR', or add --create to let nightly make it"
+            f"{root}: no magfuse store here (manifest.json is missing); pass the right "
+            f"--store, create one with 'magfuse ingest FILE --store {root}', or add --create "
+            "to let nightly make it"
         )
     if not inbox.is_dir():
         raise ConfigError(

@@ -136,7 +136,8 @@ def test_store_summary_of_a_missing_store(tmp_path: Path) -> None:
     assert res.stdout == ""
     assert res.stderr == (
         f"Error: {tmp_path / 'nowhere'}: no magfuse store here (manifest.json is missing); "
-        "ingest a file first or pass the right --store\n"
+        f"pass the right --store, or create one with 'magfuse ingest FILE --store "
+        f"{tmp_path / 'nowhere'}'\n"
     )
     assert not (tmp_path / "nowhere").exists()  # a summary never creates a store
 

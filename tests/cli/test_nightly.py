@@ -14,8 +14,6 @@ from __future__ import annotations
 import hashlib
 import json
 import re
-import subprocess
-import sys
 from dataclasses import dataclass
 from datetime import timedelta
 from pathlib import Path
@@ -32,6 +30,8 @@ from tests.cli.conftest import (
     ADVISORY_LINE,
     FAST_CONFIG,
     VERSION_RE,
+    LockHolder,
+    busy_line,
     copy_store,
     demo_frame,
     demo_slice,
@@ -40,8 +40,6 @@ from tests.cli.conftest import (
     tree_digest,
     write_config,
 )
-
-REPO = Path(__file__).resolve().parents[2]
 
 #: Adoption limits ([nightly] in config/magfuse.toml): loose ones every candidate meets, and a
 #: bias limit of 1e-6 magnitude units that any refit on new data exceeds.
@@ -202,54 +200,6 @@ def test_clean_second_night_exits_0_and_moves_nothing(nights: Nights) -> None:
     assert ModelRegistry(nights.root).active_id("ML") == t["active_after"]
     cur = FusedStore(nights.root).current("ML")
     assert set(cur["model_version"]) == {t["active_after"]}  # what is final carries it
-
-
-#: Holds the store's writer lock in another process as ``magfuse CMD`` would, says "held",
-#: and keeps it until its stdin closes.
-_HOLDER = """
-import sys
-sys.path.insert(0, {repo!r})
-from pathlib import Path
-from stations.store import StationMagnitudeStore
-from stations.store.lock import set_holder_command
-
-set_holder_command(sys.argv[2])
-store = StationMagnitudeStore.open(Path(sys.argv[1]), create=False)
-with store.write_lock():
-    print("held", flush=True)
-    sys.stdin.read()
-"""
-
-
-class LockHolder:
-    """Another process holding a store's writer lock (context manager)."""
-
-    def __init__(self, root: Path, command: str = "magfuse nightly") -> None:
-        self.proc = subprocess.Popen(
-            [sys.executable, "-c", _HOLDER.format(repo=str(REPO)), str(root), command],
-            stdin=subprocess.PIPE,
-            stdout=subprocess.PIPE,
-            text=True,
-        )
-
-    def __enter__(self) -> int:
-        assert self.proc.stdout is not None
-        assert self.proc.stdout.readline() == "held\n"
-        return self.proc.pid
-
-    def __exit__(self, *exc: object) -> None:
-        assert self.proc.stdin is not None
-        self.proc.stdin.close()
-        self.proc.wait(timeout=30)
-
-
-def busy_line(root: Path, pid: int, command: str, wait: str) -> str:
-    """The one line a writer prints when another process keeps the lock."""
-    return (
-        f"Error: {root} is busy: another magfuse process (pid {pid}, command {command}) holds "
-        f"its writer lock; try again later (waited {wait} s; [store] lock_timeout_s sets the "
-        "wait)"
-    )
 
 
 def test_busy_store_fails_with_one_line_and_leaves_the_inbox(
