@@ -294,7 +294,8 @@ def _fuse_and_freeze(
     recent = not_final & (origin >= horizon).to_numpy()
     todo = state["stale"].to_numpy() | recent
     if freeze:  # what becomes final tonight must carry the active model
-        other_model = state["model_version"].notna() & state["model_version"].ne(tr.active_after)
+        active = str(tr.active_after)
+        other_model = state["model_version"].notna() & state["model_version"].ne(active)
         todo |= not_final & ~recent & other_model.to_numpy()
     tr.caught_up = int(np.count_nonzero(state["stale"].to_numpy() & ~recent))
     if todo.any():

@@ -73,6 +73,7 @@ def store_write_error(root: Path, exc: OSError) -> StoreWriteError | None:
         "or make the store folder writable, then run the command again"
     )
 
+
 #: Seconds between attempts while waiting; short enough to hand over quickly, long enough to
 #: stay off the CPU.
 _POLL_S = 0.05
