@@ -366,3 +366,57 @@ def test_revised_reading_of_an_old_event_is_fused_again(nights: Nights, tmp_path
     rev = pd.read_csv(tmp_path / "rev.csv")
     det = rev[(rev["event_id"].astype(str) == old_id) & rev["detected"]]
     assert after["plain_mean"].iloc[0] == pytest.approx(det["magnitude"].mean(), abs=1e-9)
+
+
+def test_run_killed_while_fusing_is_caught_up_by_the_next(
+    nights: Nights, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The fused commit dies (as under ``kill -9``: nothing committed) after the ingest and the
+    model were committed; the next run, with nothing new in the inbox, fuses those events."""
+    root = copy_store(nights.root, tmp_path / "store")
+    inbox = tmp_path / "inbox"
+    frame = demo_frame()
+    mar_ids = set(
+        pd.read_csv(demo_slice(inbox / "mar.csv", "2025-03-01", "2025-03-15", frame=frame))[
+            "event_id"
+        ].astype(str)
+    )
+
+    def killed(self: FusedStore, manifest: object) -> None:
+        raise KeyboardInterrupt("killed while fusing")
+
+    monkeypatch.setattr(FusedStore, "_commit", killed)
+    res = invoke("nightly", "--inbox", inbox, "--apply", "--store", root, "--config", nights.loose)
+    monkeypatch.undo()
+    assert res.exit_code != 0
+    assert not mar_ids & set(FusedStore(root).current("ML")["event_id"].astype(str))
+    res = invoke("nightly", "--inbox", inbox, "--apply", "--store", root, "--config", nights.loose)
+    assert res.exit_code == 0, res.stdout + res.stderr
+    assert "ingested" not in res.stdout  # nothing new arrived
+    assert mar_ids <= set(FusedStore(root).current("ML")["event_id"].astype(str))
+
+
+def test_inbox_file_that_vanishes_is_skipped(
+    nights: Nights, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Another process moves a file away between the listing and the ingest: skipped, said so,
+    no traceback, and the other files go in."""
+    import stations.ingest
+
+    root = copy_store(nights.root, tmp_path / "store")
+    inbox = tmp_path / "inbox"
+    demo_slice(inbox / "a.csv", "2025-03-01", "2025-03-08")
+    demo_slice(inbox / "b.csv", "2025-03-08", "2025-03-15")
+    real = stations.ingest.ingest_file
+
+    def moved_away_first(store: StationMagnitudeStore, path: Path, **kw: object) -> object:
+        if path.name == "a.csv":
+            path.rename(tmp_path / "a.csv")  # a concurrent mover got there first
+        return real(store, path, **kw)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(stations.ingest, "ingest_file", moved_away_first)
+    res = invoke("nightly", "--inbox", inbox, "--apply", "--store", root, "--config", nights.loose)
+    assert res.exit_code == 0, res.stdout + res.stderr
+    assert "  skipped a.csv: gone from the inbox" in res.stdout.splitlines()
+    assert re.search(r"  ingested b\.csv: \d+ accepted", res.stdout)
+    assert not (inbox / "rejected").exists()
