@@ -37,10 +37,12 @@ Steps with ``apply``, each recorded in a :class:`NightlyReport`:
 6. **Freeze.** Network magnitudes of events older than the revision horizon are then marked
    final (QuakeML ``final``; never changed afterwards), with two exceptions: nothing is
    frozen on the first night a type is fused (the operator sees the first values before any
-   becomes final), and **nothing is frozen for a type whose candidate needs review** (outside
-   the adoption policy): the pending decision could change every one of those magnitudes, so
-   freezing waits until a later run in which no decision is pending (the operator adopted
-   or rejected the candidate, or a new candidate is within policy).
+   becomes final), and **nothing is frozen on a night that needs review**: when the type's
+   candidate is outside the adoption policy, the pending decision could change every one of
+   those magnitudes; when a file was rejected, its corrected version could hold readings of
+   them. Freezing waits for a later run in which no decision is pending (the operator adopted
+   or rejected the candidate, or a new candidate is within policy; the file was fixed and
+   resubmitted, or dropped).
 
 Outcome (:class:`NightlyOutcome`, the process exit status): ``success`` (0), ``failure`` (1:
 something could not run, e.g. a store that cannot be written), ``needs_review`` (3: a rejected
@@ -85,7 +87,10 @@ PROCESSED_DIR = "processed"
 REJECTED_DIR = "rejected"
 LOG_DIR = "nightly"
 #: Why a type's magnitudes were not frozen tonight (module docstring, step 6).
-DEFERRED_NOTE = "nothing made final: the candidate waits for a decision ('magfuse adopt' or not)"
+DEFERRED_CANDIDATE = (
+    "nothing made final: the candidate waits for a decision ('magfuse adopt' or not)"
+)
+DEFERRED_FILES = "nothing made final: a rejected file waits for a decision (fix and resubmit it)"
 
 
 class NightlyOutcome(IntEnum):
@@ -113,7 +118,7 @@ class TypeResult:
     fused: int = 0
     caught_up: int = 0
     skipped_final: int = 0
-    freeze_deferred: bool = False
+    freeze_deferred: str = ""
     note: str = ""
 
     def verdict(self) -> str:
@@ -179,7 +184,7 @@ class NightlyReport:
             )
             lines += [f"    {r}" for r in t.policy_reasons]
             if t.freeze_deferred:
-                lines.append(f"    {DEFERRED_NOTE}")
+                lines.append(f"    {t.freeze_deferred}")
         lines += [f"  error: {e}" for e in self.errors]
         lines.append(f"outcome: {self.outcome.name} (exit {int(self.outcome)})")
         return "\n".join(lines)
@@ -279,6 +284,7 @@ def _fuse_and_freeze(
     tr: TypeResult,
     *,
     as_of: datetime,
+    files_rejected: bool,
 ) -> None:
     """Steps 5 and 6 of the module docstring for one type with an active model."""
     from fusion.workflows.fusing import fuse_window
@@ -287,7 +293,10 @@ def _fuse_and_freeze(
     horizon = as_of - timedelta(days=cfg.nightly.revision_horizon_days)
     state = event_state(store, fused_store, mtype)
     first_run = bool(state["fused_at"].isna().all())
-    tr.freeze_deferred = not first_run and not tr.within_policy
+    if not first_run and not tr.within_policy:
+        tr.freeze_deferred = DEFERRED_CANDIDATE
+    elif not first_run and files_rejected:
+        tr.freeze_deferred = DEFERRED_FILES
     freeze = not first_run and not tr.freeze_deferred
     origin = pd.to_datetime(state["origin_time"], utc=True)
     not_final = ~state["evaluation_status"].eq("final").to_numpy()
@@ -326,6 +335,8 @@ def _night_for_type(
     cfg: MagfuseConfig,
     tr: TypeResult,
     started: datetime,
+    *,
+    files_rejected: bool,
 ) -> None:
     """Steps 2-6 of the module docstring for one magnitude type."""
     from fusion.workflows.dry_run import dry_run
@@ -353,7 +364,9 @@ def _night_for_type(
     if tr.active_after is None:
         tr.note = "no active model yet; adopt one with 'magfuse adopt'"
         return
-    _fuse_and_freeze(store, registry, fused_store, cfg, tr, as_of=as_of)
+    _fuse_and_freeze(
+        store, registry, fused_store, cfg, tr, as_of=as_of, files_rejected=files_rejected
+    )
 
 
 # -- the run -----------------------------------------------------------------------------------
@@ -477,7 +490,15 @@ def run_nightly(
             for mtype in sorted(types):
                 tr = TypeResult(mtype, active_before=registry.active_id(mtype))
                 report.types.append(tr)
-                _night_for_type(store, registry, fused_store, cfg, tr, started)
+                _night_for_type(
+                    store,
+                    registry,
+                    fused_store,
+                    cfg,
+                    tr,
+                    started,
+                    files_rejected=bool(report.rejected_files),
+                )
         except MagfuseError as exc:
             report.errors.append(str(exc))
         except OSError as exc:  # a store write that failed (read-only or full disk)

@@ -420,3 +420,25 @@ def test_inbox_file_that_vanishes_is_skipped(
     assert "  skipped a.csv: gone from the inbox" in res.stdout.splitlines()
     assert re.search(r"  ingested b\.csv: \d+ accepted", res.stdout)
     assert not (inbox / "rejected").exists()
+
+
+def test_night_with_a_rejected_file_freezes_nothing(nights: Nights, tmp_path: Path) -> None:
+    """A rejected file waits for the operator: its fixed version may hold readings of events
+    that would otherwise become final tonight. The next clean night freezes them."""
+    root = copy_store(nights.root, tmp_path / "store")
+    inbox = tmp_path / "inbox"
+    demo_slice(inbox / "mar.csv", "2025-03-01", "2025-04-01")
+    (inbox / "garbage.bin").write_bytes(GARBAGE)
+    fused = FusedStore(root)
+    finals = set(_final_ids(fused))
+    res = invoke("nightly", "--inbox", inbox, "--apply", "--store", root, "--config", nights.loose)
+    assert res.exit_code == 3, res.stdout + res.stderr
+    assert re.search(r"  ML: candidate .*; \d+ events fused, 0 made final", res.stdout)
+    assert (
+        "    nothing made final: a rejected file waits for a decision (fix and resubmit it)"
+        in res.stdout.splitlines()
+    )
+    assert set(_final_ids(fused)) == finals
+    res = invoke("nightly", "--inbox", inbox, "--apply", "--store", root, "--config", nights.loose)
+    assert res.exit_code == 0, res.stdout + res.stderr
+    assert len(set(_final_ids(fused))) > len(finals)
