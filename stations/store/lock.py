@@ -2,7 +2,10 @@
 
 ``flock`` locks belong to an open file description, so two opens of the lock file conflict even
 inside one process, and the kernel drops the lock when its holder dies (also on ``SIGKILL``): a
-crashed writer never leaves the store locked. The holder writes its process id and its command
+crashed writer never leaves the store locked. One process therefore shares one
+:class:`WriteLock` per lock file (:func:`shared_lock`): a thread that holds it re-enters it
+through any store object of the same folder instead of waiting for itself, and other threads
+queue on it. The holder writes its process id and its command
 (``magfuse nightly``, ...) into the file so that a waiting writer can name it. POSIX only
 (``fcntl``).
 
@@ -26,7 +29,7 @@ from pathlib import Path
 
 from stations.errors import StoreBusyError, StoreWriteError
 
-__all__ = ["WriteLock", "set_holder_command", "store_write_error"]
+__all__ = ["WriteLock", "set_holder_command", "shared_lock", "store_write_error"]
 
 #: What this process is, as the lock file records it for a waiting writer (see
 #: :func:`set_holder_command`); by default the program name and its first argument.
@@ -120,35 +123,45 @@ class WriteLock:
         )
         return f"another magfuse process ({details})" if details else "another magfuse process"
 
-    def _busy(self) -> StoreBusyError:
+    def _busy(self, timeout_s: float) -> StoreBusyError:
         return StoreBusyError(
             f"{self.path.parent} is busy: {self._holder()} holds its writer lock; try again "
-            f"later (waited {self.timeout_s:g} s; [store] lock_timeout_s sets the wait)"
+            f"later (waited {timeout_s:g} s; [store] lock_timeout_s sets the wait)"
         )
 
-    def _tell(self, on_wait: Callable[[str], None] | None) -> bool:
-        if on_wait is None or self.timeout_s <= 0:
+    def _tell(self, on_wait: Callable[[str], None] | None, timeout_s: float) -> bool:
+        if on_wait is None or timeout_s <= 0:
             return False
         on_wait(
-            f"{self.path.parent}: waiting up to {self.timeout_s:g} s for {self._holder()} to "
+            f"{self.path.parent}: waiting up to {timeout_s:g} s for {self._holder()} to "
             "release the store's writer lock"
         )
         return True
 
-    def acquire(self, on_wait: Callable[[str], None] | None = None) -> None:
+    def acquire(
+        self, on_wait: Callable[[str], None] | None = None, *, timeout_s: float | None = None
+    ) -> None:
         """Take the lock, waiting up to ``timeout_s``; ``on_wait`` gets one message if it waits.
+
+        Parameters
+        ----------
+        on_wait : callable, optional
+            Receives one message if the lock is busy and the call waits.
+        timeout_s : float, optional
+            Longest wait in seconds (default: the instance's ``timeout_s``).
 
         Raises
         ------
         StoreBusyError
             If another holder keeps the lock longer than ``timeout_s``.
         """
-        deadline = time.monotonic() + self.timeout_s
+        wait = self.timeout_s if timeout_s is None else timeout_s
+        deadline = time.monotonic() + wait
         told = False
         if not self._thread_lock.acquire(blocking=False):
-            told = self._tell(on_wait)
-            if not self._thread_lock.acquire(timeout=self.timeout_s):
-                raise self._busy()
+            told = self._tell(on_wait, wait)
+            if not self._thread_lock.acquire(timeout=wait):
+                raise self._busy(wait)
         if self._depth:  # this thread already holds the file lock
             self._depth += 1
             return
@@ -164,9 +177,9 @@ class WriteLock:
                     break
                 except BlockingIOError:
                     if time.monotonic() >= deadline:
-                        raise self._busy() from None
+                        raise self._busy(wait) from None
                     if not told:
-                        told = self._tell(on_wait)
+                        told = self._tell(on_wait, wait)
                     time.sleep(min(_POLL_S, max(0.0, deadline - time.monotonic())))
         except BaseException:
             os.close(fd)
@@ -196,8 +209,10 @@ class WriteLock:
             self._thread_lock.release()
 
     @contextmanager
-    def hold(self, on_wait: Callable[[str], None] | None = None) -> Iterator[None]:
-        """Context manager around :meth:`acquire` / :meth:`release`.
+    def hold(
+        self, on_wait: Callable[[str], None] | None = None, *, timeout_s: float | None = None
+    ) -> Iterator[None]:
+        """Context manager around :meth:`acquire` / :meth:`release` (same parameters).
 
         Raises
         ------
@@ -208,7 +223,7 @@ class WriteLock:
             file where a folder belongs), raised while taking the lock or inside the block.
         """
         try:
-            self.acquire(on_wait)
+            self.acquire(on_wait, timeout_s=timeout_s)
         except OSError as exc:
             raise (store_write_error(self.path.parent, exc) or exc) from None
         try:
@@ -220,3 +235,23 @@ class WriteLock:
             raise err from exc
         finally:
             self.release()
+
+
+#: This process's lock of each lock file (by real path), shared by every store object.
+_SHARED: dict[str, WriteLock] = {}
+_SHARED_GUARD = threading.Lock()
+
+
+def shared_lock(path: Path, timeout_s: float = 30.0) -> WriteLock:
+    """This process's :class:`WriteLock` of the lock file ``path`` (created on first use).
+
+    Every store object of one folder gets the same instance, so a thread holding the lock
+    re-enters it wherever it is taken again (no process waits for itself); each caller passes
+    its own wait to :meth:`WriteLock.hold`.
+    """
+    key = os.path.realpath(path)
+    with _SHARED_GUARD:
+        lock = _SHARED.get(key)
+        if lock is None:
+            lock = _SHARED[key] = WriteLock(Path(path), timeout_s)
+        return lock

@@ -18,6 +18,7 @@ from stations.readers.csv import template_path
 from stations.store import StationMagnitudeStore
 from stations.store.lock import set_holder_command
 from tests.datasets import YELLOWSTONE_CSV
+from tests.stations.store.lock_holder import held_by_another_thread
 
 runner = CliRunner()
 BATCH = r"\d{8}T\d{12}Z-[0-9a-f]{6}"
@@ -118,7 +119,7 @@ def test_busy_store_fails_with_the_lock_message(tmp_path: Path) -> None:
     cfg.write_text(f'[store]\npath = "{root}"\nlock_timeout_s = 0.2\n')
     holder = StationMagnitudeStore.open(root)
     set_holder_command("magfuse nightly")  # what the lock file says about its holder
-    with holder.write_lock():
+    with held_by_another_thread(holder):
         res = runner.invoke(app, ["ingest", str(template_path()), "--config", str(cfg)])
     assert res.exit_code == 1
     who = f"another magfuse process (pid {os.getpid()}, command magfuse nightly)"
