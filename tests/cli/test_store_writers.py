@@ -228,6 +228,10 @@ def test_read_only_store_fails_every_writer_with_one_line(
             line,
         )
         assert str(extra) not in line  # the store is to blame, not the input file
+    # Readers take no lock: a read-only store can still be looked at.
+    for args in (["store"], ["models"], ["nightly", "--inbox", inbox]):
+        res = invoke(*args, "--store", root, "--config", config)
+        assert res.exit_code == 0, (args, res.stdout + res.stderr)
     monkeypatch.undo()
     assert _store_files(root) == before
     assert tree_digest(inbox) == inbox_before  # nothing moved to rejected/
