@@ -242,9 +242,11 @@ def event_state(
     -------
     pandas.DataFrame
         One row per event of ``magnitude_type`` in the station store: ``event_id``,
-        ``origin_time``, ``newest_ingest`` (latest ``ingest_time`` of its current readings,
-        UTC), and from the fused store ``fused_at``, ``evaluation_status`` and
-        ``model_version`` (missing when the event has no network magnitude), plus ``stale``:
+        ``origin_time`` (the latest of its readings), ``first_origin`` (the earliest; readings
+        of one event from different sources may differ), ``newest_ingest`` (latest
+        ``ingest_time`` of its current readings, UTC), and from the fused store ``fused_at``,
+        ``evaluation_status`` and ``model_version`` (missing when the event has no network
+        magnitude), plus ``stale``:
         not final and either never fused or holding a reading ingested after ``fused_at``.
     """
     rows = store.scan(
@@ -252,7 +254,11 @@ def event_state(
     )
     per_event = (
         rows.groupby("event_id", sort=True, observed=True)
-        .agg(origin_time=("origin_time", "max"), newest_ingest=("ingest_time", "max"))
+        .agg(
+            origin_time=("origin_time", "max"),
+            first_origin=("origin_time", "min"),
+            newest_ingest=("ingest_time", "max"),
+        )
         .reset_index()
     )
     cur = fused_store.current(magnitude_type)
@@ -313,7 +319,7 @@ def _fuse_and_freeze(
             registry,
             cfg,
             magnitude_type=mtype,
-            start=origin[todo].min().to_pydatetime(),
+            start=pd.to_datetime(state["first_origin"], utc=True)[todo].min().to_pydatetime(),
             end=as_of + timedelta(microseconds=1),
         )
         wanted = state["event_id"].to_numpy(dtype=str)[todo]
