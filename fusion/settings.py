@@ -173,6 +173,15 @@ def load_config(path: Path | None = None) -> MagfuseConfig:
         raise ConfigError(
             f"{source}: configuration file not found; pass an existing --config"
         ) from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError(
+            f"{source}: byte {exc.start} is not UTF-8 text; save the configuration as UTF-8 "
+            "(TOML files are UTF-8)"
+        ) from None
+    except OSError as exc:
+        raise ConfigError(
+            f"{source}: cannot read the configuration ({exc.strerror}); pass a readable file"
+        ) from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

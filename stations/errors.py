@@ -30,6 +30,7 @@ __all__ = [
     "StationNotFoundError",
     "StoreBusyError",
     "StoreCorruptError",
+    "StoreWriteError",
     "TooFewStationsWarning",
     "UnitError",
     "UnknownFormatError",
@@ -88,6 +89,10 @@ class StoreBusyError(MagfuseError):
 
 class StoreCorruptError(MagfuseError):
     """The store manifest or a file it lists cannot be read."""
+
+
+class StoreWriteError(MagfuseError):
+    """The store cannot be written (read-only or full disk, no permission); names the store."""
 
 
 class InsufficientDataError(MagfuseError, ValueError):

@@ -25,6 +25,15 @@ __all__ = ["app", "main"]
 class _ErrorBoundary(TyperGroup):
     """Turn every :class:`MagfuseError` raised by a command into ``Error: ...`` and exit 1."""
 
+    def resolve_command(self, ctx: Any, args: list[str]) -> Any:
+        """Find the sub-command; name it in the store lock files this process takes."""
+        name, cmd, rest = super().resolve_command(ctx, args)
+        if name:
+            from stations.store.lock import set_holder_command
+
+            set_holder_command(f"magfuse {name}")
+        return name, cmd, rest
+
     def invoke(self, ctx: Any) -> Any:  # a click Context (typer vendors click)
         try:
             return super().invoke(ctx)

@@ -18,6 +18,7 @@ from fusion.cli.common import (
     open_store,
     parse_time,
     print_advisory,
+    writing,
 )
 
 __all__ = ["compute_command", "register"]
@@ -51,15 +52,15 @@ def compute_command(
     st = open_store(cfg, store)
     start: datetime | None = parse_time(since, "--since")
     end: datetime | None = parse_time(until, "--until")
-    outcome = recompute_window(
-        st,
-        magnitude_type=mtype,
-        options=options,
-        metadata=metadata,
-        start=start,
-        end=end,
-        on_wait=lambda msg: typer.echo(msg, err=True),
-    )
+    with writing(st):
+        outcome = recompute_window(
+            st,
+            magnitude_type=mtype,
+            options=options,
+            metadata=metadata,
+            start=start,
+            end=end,
+        )
     r = outcome.report
     typer.echo(
         f"{mtype}: {outcome.computed} recomputed with {options.ml_correction.name} / "

@@ -18,6 +18,7 @@ from fusion.cli.common import (
     open_store,
     parse_time,
     print_advisory,
+    writing,
 )
 
 if TYPE_CHECKING:
@@ -101,6 +102,8 @@ def learn_command(
     cfg = load(config)
     st = open_store(cfg, store)
     reg = open_registry(st)
+    if csv is not None:
+        _csv_folder(csv)  # before the fit: a bad --csv must not fail after the save
     outcome = learn_candidate(
         st,
         reg,
@@ -112,14 +115,34 @@ def learn_command(
     )
     v = outcome.version
     if csv is not None:
-        csv.mkdir(parents=True, exist_ok=True)
         for name in ("stations", "pairs", "epochs"):
             reg.load_table(v, name).to_csv(csv / f"{v.version_id}-{name}.csv", index=False)
     if json_out:
-        typer.echo(json.dumps(dict(v.meta), indent=2, default=str))
+        typer.echo(
+            json.dumps({**v.meta, "identical_to": outcome.identical_to}, indent=2, default=str)
+        )
+    elif outcome.identical_to is not None:
+        state = "the active model" if reg.active_id(v.magnitude_type) == v.version_id else "stored"
+        typer.echo(
+            f"identical to version {v.version_id} ({state}); nothing stored: same data window, "
+            "settings and anchor"
+        )
     else:
         typer.echo("\n".join(_summary_lines(v)))
     print_advisory()
+
+
+def _csv_folder(folder: Path) -> None:
+    """Create the ``--csv`` folder, or say in one line why it cannot be."""
+    from stations.errors import ConfigError
+
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise ConfigError(
+            f"--csv {folder}: cannot create the folder ({exc.strerror}); pass a folder that "
+            "can be written"
+        ) from None
 
 
 def _version_row(v: ModelVersion, active: str | None) -> dict[str, Any]:
@@ -179,8 +202,9 @@ def adopt_command(
 ) -> None:
     """Make a model version the active one of its magnitude type (atomic switch)."""
     cfg = load(config)
-    reg = open_registry(open_store(cfg, store))
-    v = reg.adopt(version)
+    st = open_store(cfg, store)
+    with writing(st):
+        v = open_registry(st).adopt(version)
     typer.echo(f"active {v.magnitude_type} model: {v.version_id}")
     print_advisory()
 
@@ -190,7 +214,8 @@ def rollback_command(
 ) -> None:
     """Re-activate the model version that was active before the current one."""
     cfg = load(config)
-    reg = open_registry(open_store(cfg, store))
-    v = reg.rollback(type or cfg.learn.magnitude_type)
+    st = open_store(cfg, store)
+    with writing(st):
+        v = open_registry(st).rollback(type or cfg.learn.magnitude_type)
     typer.echo(f"active {v.magnitude_type} model: {v.version_id} (rolled back)")
     print_advisory()

@@ -21,6 +21,7 @@ from fusion.cli.common import (
     open_store,
     parse_time,
     print_advisory,
+    writing,
 )
 
 __all__ = ["register"]
@@ -52,18 +53,19 @@ def fuse_command(
     cfg = load(config)
     st = open_store(cfg, store)
     mtype = type or cfg.learn.magnitude_type
-    res = fuse_window(
-        st,
-        open_registry(st),
-        cfg,
-        magnitude_type=mtype,
-        start=parse_time(since, "--since"),
-        end=parse_time(until, "--until"),
-        version=version,
-    )
-    report = FusedStore(st.root, lock=st.write_lock).write_run(
-        res.fused, model_version=res.version.version_id
-    )
+    with writing(st):
+        res = fuse_window(
+            st,
+            open_registry(st),
+            cfg,
+            magnitude_type=mtype,
+            start=parse_time(since, "--since"),
+            end=parse_time(until, "--until"),
+            version=version,
+        )
+        report = FusedStore(st.root, lock=st.write_lock).write_run(
+            res.fused, model_version=res.version.version_id
+        )
     ev = res.fused.events
     moved = (ev["magnitude"] - ev["plain_mean"]).abs()
     typer.echo(
@@ -95,9 +97,10 @@ def finalize_command(
     cfg = load(config)
     st = open_store(cfg, store)
     mtype = type or cfg.learn.magnitude_type
-    n = FusedStore(st.root, lock=st.write_lock).finalize(
-        mtype, before=parse_time(before, "--before"), event_ids=event_ids or None
-    )
+    with writing(st):
+        n = FusedStore(st.root, lock=st.write_lock).finalize(
+            mtype, before=parse_time(before, "--before"), event_ids=event_ids or None
+        )
     typer.echo(f"{mtype}: {n:,} network magnitudes marked final")
 
 

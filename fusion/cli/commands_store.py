@@ -97,7 +97,12 @@ def _ingest_one(
     allow_near_duplicates: bool = False,
 ) -> _Outcome:
     """Read and store one file; per-file problems become an error line, store problems raise."""
-    from stations.errors import MagfuseError, StoreBusyError, StoreCorruptError
+    from stations.errors import (
+        MagfuseError,
+        StoreBusyError,
+        StoreCorruptError,
+        StoreWriteError,
+    )
     from stations.ingest import ingest_file
 
     size = _size(path)
@@ -114,7 +119,7 @@ def _ingest_one(
             allow_near_duplicates=allow_near_duplicates,
         )
         advance(2 * size)
-    except (StoreBusyError, StoreCorruptError):
+    except (StoreBusyError, StoreCorruptError, StoreWriteError):
         raise
     except MagfuseError as exc:
         return _Outcome(f"Error: {exc}", True)

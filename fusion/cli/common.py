@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from contextlib import AbstractContextManager
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
@@ -128,6 +129,17 @@ def open_registry(store: StationMagnitudeStore) -> ModelRegistry:
     from fusion.versions.model_registry import ModelRegistry
 
     return ModelRegistry(store.root, lock=store.write_lock)
+
+
+def writing(store: StationMagnitudeStore) -> AbstractContextManager[None]:
+    """Hold the store's writer lock for a whole command that reads, then writes.
+
+    A command that reads the store and writes what it computed (``fuse``, ``compute``) holds
+    the lock from its first read to its commit, so no other writer changes the data in between
+    and the rows it writes are newer than every row it read (the nightly catch-up relies on
+    this). A second process waits up to ``[store] lock_timeout_s``, saying so on stderr.
+    """
+    return store.write_lock(on_wait=lambda msg: typer.echo(msg, err=True))
 
 
 def store_path(config_store: Path, option: Path | None) -> Path:

@@ -16,6 +16,10 @@ A version folder is written under a temporary name, every file fsync'ed, then re
 file. A crash (even ``kill -9``) at any point leaves the previous pointer or the new one, never
 a mixture, and never a half-written version under its final name (POSIX rename atomicity).
 Writers hold the store's write lock (the caller passes it).
+
+A writer killed before its rename leaves its temporary folder (``versions/.<id>.<random>``).
+Every writer that holds the lock removes such folders first: while it holds the lock no other
+writer can be filling one, so any that exists is a leftover.
 """
 
 from __future__ import annotations
@@ -206,7 +210,20 @@ class ModelRegistry:
             yield
         else:
             with self._lock():
+                self.remove_leftovers()
                 yield
+
+    def remove_leftovers(self) -> list[Path]:
+        """Remove temporary version folders of killed writers; return what was removed.
+
+        Call only while holding the store's write lock (every writer of this class does).
+        """
+        removed: list[Path] = []
+        for folder in self.root.glob("*/versions/.*"):
+            if folder.is_dir():
+                shutil.rmtree(folder, ignore_errors=True)
+                removed.append(folder)
+        return removed
 
     def _type_dir(self, magnitude_type: str) -> Path:
         return self.root / check_magnitude_type(magnitude_type)

@@ -5,11 +5,20 @@
 continuity, docs/rolling-fit.md §4), and saves the result as a new, not yet adopted, model version
 with everything needed to reproduce and audit it: window, as-of time, configuration hash, data
 fingerprint of the store files read, code version, creation time and anchor.
+
+**Unchanged input stores nothing.** The inputs of a fit (window, configuration hash, data
+fingerprint, forgetting settings, seed, code version and the previous model that gives the
+warm start and the anchor) are hashed into ``input_digest``. A stored version of the same type
+with the same digest is the answer, without fitting again. A new fit whose parameters agree
+with a stored version's of the same data and settings (same units and pairs; biases, variances
+and pair covariances within :data:`IDENTICAL_ATOL`) is not stored either: the outcome names
+the version it is identical to.
 """
 
 from __future__ import annotations
 
 import hashlib
+import json
 import math
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
@@ -22,12 +31,14 @@ from fusion.observations import ObservationSet
 from stations.errors import ConfigError, InsufficientDataError, ModelNotFoundError
 
 if TYPE_CHECKING:
+    from fusion.model.parameters import StationParameters
     from fusion.model.station_model import StationModel
     from fusion.settings import MagfuseConfig
     from fusion.versions.model_registry import ModelRegistry, ModelVersion
     from stations.store import StationMagnitudeStore
 
 __all__ = [
+    "IDENTICAL_ATOL",
     "LearnOutcome",
     "check_reference_stations",
     "config_hash",
@@ -36,14 +47,41 @@ __all__ = [
     "model_summary",
 ]
 
+#: Largest difference (magnitude units, and their squares for variances) under which two fits
+#: of the same data and settings count as identical. Far below the printed precision (0.001)
+#: and the adoption limits; common practice, no source.
+IDENTICAL_ATOL = 1e-6
+
+#: Meta keys that must agree before two versions' parameters are compared.
+_SAME_INPUT_KEYS = (
+    "window_start",
+    "window_end",
+    "half_life_days",
+    "window_days",
+    "config_hash",
+    "data_fingerprint",
+)
+
 
 @dataclass(frozen=True, slots=True)
 class LearnOutcome:
-    """A learned candidate: the stored version and the fitted model behind it."""
+    """A learned candidate: the stored version and the fitted model behind it.
+
+    Attributes
+    ----------
+    version : ModelVersion
+        The new version, or the stored one the result is identical to.
+    model, observations
+        The fit and its data; None when a stored version with the same inputs was reused
+        without fitting.
+    identical_to : str or None
+        Set when nothing new was stored: the id of the identical stored version.
+    """
 
     version: ModelVersion
-    model: StationModel
-    observations: ObservationSet
+    model: StationModel | None
+    observations: ObservationSet | None
+    identical_to: str | None = None
 
 
 def config_hash(cfg: MagfuseConfig) -> str:
@@ -157,12 +195,29 @@ def learn_candidate(
     window = float(window_days if window_days is not None else cfg.learn.window_days)
     half_life = float(half_life_days if half_life_days is not None else cfg.learn.half_life_days)
     start = end - timedelta(days=window) if math.isfinite(window) else None
+    previous_id = registry.active_id(mtype)
+    inputs: dict[str, Any] = {
+        "window_start": start.isoformat() if start else None,
+        "window_end": end.isoformat(),
+        "half_life_days": half_life,
+        "window_days": window,
+        "config_hash": config_hash(cfg),
+        # the window's files, the as-of instant included (the scan below reads it too)
+        "data_fingerprint": store.fingerprint(
+            magnitude_type=mtype, start=start, end=end + timedelta(microseconds=1)
+        ),
+        "previous_version": previous_id,
+        "random_state": random_state,
+    }
+    digest = input_digest(inputs)
+    same = next((v for v in registry.versions(mtype) if v.meta.get("input_digest") == digest), None)
+    if same is not None:
+        return LearnOutcome(same, None, None, identical_to=same.version_id)
     # The scan's end is exclusive; the as-of instant itself belongs to the window.
     obs = load_window(store, mtype, start=start, end=end + timedelta(microseconds=1))
     check_reference_stations(cfg.learn.reference_stations, obs.station_ids, mtype)
 
     previous = None
-    previous_id = registry.active_id(mtype)
     if previous_id is not None:
         try:
             previous = registry.load_parameters(previous_id)
@@ -176,18 +231,15 @@ def learn_candidate(
     model.fit(obs, as_of=as_of64, previous=previous)
 
     meta: dict[str, Any] = {
-        "window_start": start.isoformat() if start else None,
-        "window_end": end.isoformat(),
+        **inputs,
         "as_of": end.isoformat(),
-        "half_life_days": half_life,
-        "window_days": window,
-        "config_hash": config_hash(cfg),
-        "data_fingerprint": store.fingerprint(magnitude_type=mtype, start=start, end=end),
+        "input_digest": digest,
         "anchor": _anchor_meta(model),
-        "previous_version": previous_id,
-        "random_state": random_state,
         **model_summary(model, obs),
     }
+    twin = _identical_version(registry, model.parameters_, meta)
+    if twin is not None:
+        return LearnOutcome(twin, model, obs, identical_to=twin.version_id)
     tables = {
         "stations": model.station_table_,
         "pairs": _parquet_safe(model.pair_table_),
@@ -200,6 +252,38 @@ def learn_candidate(
         tables["detection_curves"] = curves.table()
     version = registry.save(model.parameters_, meta, tables, now=now)
     return LearnOutcome(version, model, obs)
+
+
+def input_digest(inputs: dict[str, Any]) -> str:
+    """SHA-256 of a fit's inputs (module docstring), with the code version."""
+    from fusion import __version__
+
+    text = json.dumps({**inputs, "code_version": __version__}, sort_keys=True, default=str)
+    return f"sha256:{hashlib.sha256(text.encode()).hexdigest()}"
+
+
+def _identical_version(
+    registry: ModelRegistry, params: StationParameters, meta: dict[str, Any]
+) -> ModelVersion | None:
+    """A stored version of the same data and settings whose parameters equal ``params``."""
+    for v in reversed(registry.versions(params.magnitude_type)):
+        if any(v.meta.get(k) != meta.get(k) for k in _SAME_INPUT_KEYS):
+            continue
+        if _same_parameters(registry.load_parameters(v), params):
+            return v
+    return None
+
+
+def _same_parameters(a: StationParameters, b: StationParameters) -> bool:
+    """Same units and pairs, values within :data:`IDENTICAL_ATOL`."""
+    if not np.array_equal(a.unit_ids.astype(str), b.unit_ids.astype(str)):
+        return False
+    pairs_a = np.stack([a.pairs.k, a.pairs.l]) if a.pairs.n_pairs else np.zeros((2, 0))
+    pairs_b = np.stack([b.pairs.k, b.pairs.l]) if b.pairs.n_pairs else np.zeros((2, 0))
+    if not np.array_equal(pairs_a, pairs_b):
+        return False
+    pa_, pb_ = (np.concatenate([p.bias, p.bias_var, p.sigma2, p.pairs.c]) for p in (a, b))
+    return bool(np.allclose(pa_, pb_, rtol=0.0, atol=IDENTICAL_ATOL, equal_nan=True))
 
 
 def _anchor_meta(model: StationModel) -> dict[str, Any]:

@@ -221,8 +221,8 @@ def load_manifest(root: Path) -> Manifest:
         text = path.read_bytes()
     except FileNotFoundError:
         raise StoreCorruptError(
-            f"{root}: no magfuse store here ({MANIFEST_NAME} is missing); ingest a file first "
-            "or pass the right --store"
+            f"{root}: no magfuse store here ({MANIFEST_NAME} is missing); pass the right "
+            f"--store, or create one with 'magfuse ingest FILE --store {root}'"
         ) from None
     try:
         doc = json.loads(text)

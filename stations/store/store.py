@@ -50,7 +50,7 @@ from stations.store.layout import (
     new_batch_id,
 )
 from stations.store.links import check_no_outside_links
-from stations.store.lock import WriteLock
+from stations.store.lock import shared_lock
 from stations.store.manifest import FileEntry, Manifest, load_manifest, save_manifest
 from stations.store.reading import (
     EVENT_INDEX_SCHEMA,
@@ -207,7 +207,7 @@ class StationMagnitudeStore:
     def __init__(self, root: Path, *, lock_timeout_s: float = 30.0) -> None:
         self.root = Path(root)
         self.lock_timeout_s = lock_timeout_s
-        self._lock = WriteLock(self.root / LOCK_NAME, lock_timeout_s)
+        self._lock = shared_lock(self.root / LOCK_NAME, lock_timeout_s)
         self._cached: tuple[tuple[int, int, int], Manifest] | None = None
 
     # -- opening ---------------------------------------------------------------------------
@@ -248,7 +248,7 @@ class StationMagnitudeStore:
                     f"{foreign[0]!r}); choose a new or empty folder for --store"
                 )
         self.root.mkdir(parents=True, exist_ok=True)
-        with self._lock.hold():
+        with self._lock.hold(timeout_s=self.lock_timeout_s):
             if not (self.root / MANIFEST_NAME).exists():
                 save_manifest(self.root, Manifest())
 
@@ -258,15 +258,16 @@ class StationMagnitudeStore:
     ) -> AbstractContextManager[None]:
         """The store's exclusive write lock, for every writer under the store root.
 
-        Re-entrant for this store object. Waits up to ``lock_timeout_s``; ``on_wait`` receives
-        one message if it has to wait.
+        Re-entrant for the thread that holds it, through this or any other store object of
+        the same folder in this process (``stations.store.lock.shared_lock``). Waits up to
+        ``lock_timeout_s``; ``on_wait`` receives one message if it has to wait.
 
         Raises
         ------
         StoreBusyError
             If another writer holds the lock longer than ``lock_timeout_s``.
         """
-        return self._lock.hold(on_wait)
+        return self._lock.hold(on_wait, timeout_s=self.lock_timeout_s)
 
     def manifest(self) -> Manifest:
         """The committed manifest.
@@ -794,7 +795,7 @@ class StationMagnitudeStore:
             return IngestReport(source_file, None, 0, 0, 0, 0, no_rows=True)
         kept, screened = screen(table)
         collapsed = collapse(kept)
-        with self._lock.hold(on_wait):
+        with self._lock.hold(on_wait, timeout_s=self.lock_timeout_s):
             m = load_manifest(self.root)
             if content_hash is not None:
                 for b in m.batches:

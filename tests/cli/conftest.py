@@ -11,6 +11,8 @@ from __future__ import annotations
 import hashlib
 import re
 import shutil
+import subprocess
+import sys
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
@@ -146,4 +148,56 @@ def learned_store(tmp_path_factory: pytest.TempPathFactory) -> LearnedStore:
     fuse_v1 = invoke("fuse", "--store", root, "--config", config)
     return LearnedStore(
         root, config, csv, as_of, v1, v2, ingest, learn_v1, learn_v2, adopt_v1, fuse_v1
+    )
+
+
+#: The repository root (a subprocess puts it first on its path).
+REPO = Path(__file__).resolve().parents[2]
+
+
+#: Holds the store's writer lock in another process as ``magfuse CMD`` would, says "held",
+#: and keeps it until its stdin closes.
+_HOLDER = """
+import sys
+sys.path.insert(0, {repo!r})
+from pathlib import Path
+from stations.store import StationMagnitudeStore
+from stations.store.lock import set_holder_command
+
+set_holder_command(sys.argv[2])
+store = StationMagnitudeStore.open(Path(sys.argv[1]), create=False)
+with store.write_lock():
+    print("held", flush=True)
+    sys.stdin.read()
+"""
+
+
+class LockHolder:
+    """Another process holding a store's writer lock (context manager)."""
+
+    def __init__(self, root: Path, command: str = "magfuse nightly") -> None:
+        self.proc = subprocess.Popen(
+            [sys.executable, "-c", _HOLDER.format(repo=str(REPO)), str(root), command],
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+
+    def __enter__(self) -> int:
+        assert self.proc.stdout is not None
+        assert self.proc.stdout.readline() == "held\n"
+        return self.proc.pid
+
+    def __exit__(self, *exc: object) -> None:
+        assert self.proc.stdin is not None
+        self.proc.stdin.close()
+        self.proc.wait(timeout=30)
+
+
+def busy_line(root: Path, pid: int, command: str, wait: str) -> str:
+    """The one line a writer prints when another process keeps the lock."""
+    return (
+        f"Error: {root} is busy: another magfuse process (pid {pid}, command {command}) holds "
+        f"its writer lock; try again later (waited {wait} s; [store] lock_timeout_s sets the "
+        "wait)"
     )

@@ -16,7 +16,9 @@ from fusion.cli.app import app
 from stations.readers import read_records
 from stations.readers.csv import template_path
 from stations.store import StationMagnitudeStore
+from stations.store.lock import set_holder_command
 from tests.datasets import YELLOWSTONE_CSV
+from tests.stations.store.lock_holder import held_by_another_thread
 
 runner = CliRunner()
 BATCH = r"\d{8}T\d{12}Z-[0-9a-f]{6}"
@@ -116,14 +118,15 @@ def test_busy_store_fails_with_the_lock_message(tmp_path: Path) -> None:
     cfg = tmp_path / "magfuse.toml"
     cfg.write_text(f'[store]\npath = "{root}"\nlock_timeout_s = 0.2\n')
     holder = StationMagnitudeStore.open(root)
-    with holder.write_lock():
+    set_holder_command("magfuse nightly")  # what the lock file says about its holder
+    with held_by_another_thread(holder):
         res = runner.invoke(app, ["ingest", str(template_path()), "--config", str(cfg)])
     assert res.exit_code == 1
-    pid = os.getpid()
+    who = f"another magfuse process (pid {os.getpid()}, command magfuse nightly)"
     assert res.stderr == (
-        f"{root}: waiting up to 0.2 s for another writer (pid {pid}) to release the store lock\n"
-        f"Error: {root}: another writer (pid {pid}) still holds the store lock after 0.2 s; "
-        "run again when it has finished, or raise [store] lock_timeout_s\n"
+        f"{root}: waiting up to 0.2 s for {who} to release the store's writer lock\n"
+        f"Error: {root} is busy: {who} holds its writer lock; try again later (waited 0.2 s; "
+        "[store] lock_timeout_s sets the wait)\n"
     )
     assert holder.summary().batches == 0
 
@@ -134,7 +137,8 @@ def test_store_summary_of_a_missing_store(tmp_path: Path) -> None:
     assert res.stdout == ""
     assert res.stderr == (
         f"Error: {tmp_path / 'nowhere'}: no magfuse store here (manifest.json is missing); "
-        "ingest a file first or pass the right --store\n"
+        f"pass the right --store, or create one with 'magfuse ingest FILE --store "
+        f"{tmp_path / 'nowhere'}'\n"
     )
     assert not (tmp_path / "nowhere").exists()  # a summary never creates a store
 

@@ -137,7 +137,8 @@ def test_learn_on_an_empty_or_missing_store_is_one_line(
     assert (missing.exit_code, missing.stdout) == (1, "")
     assert missing.stderr == (
         f"Error: {tmp_path / 'nowhere'}: no magfuse store here (manifest.json is missing); "
-        "ingest a file first or pass the right --store\n"
+        f"pass the right --store, or create one with 'magfuse ingest FILE --store "
+        f"{tmp_path / 'nowhere'}'\n"
     )
 
 

@@ -98,3 +98,15 @@ def test_integer_for_a_decimal_setting_is_accepted(tmp_path: Path) -> None:
     assert cfg.learn.half_life_days == 30.0
     assert cfg.compute.mb_bb_period_range_s == (1.0, 20.0)
     assert cfg.store.path == Path("somewhere")
+
+
+def test_configuration_that_is_not_utf8_is_one_error(tmp_path: Path) -> None:
+    path = tmp_path / "latin1.toml"
+    path.write_bytes('[nightly]\n# r\xe9seau\ninbox = "in"\n'.encode("latin-1"))
+    offset = path.read_bytes().index(b"\xe9")  # the first byte UTF-8 cannot decode
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert str(err.value) == (
+        f"{path}: byte {offset} is not UTF-8 text; save the configuration as UTF-8 (TOML files "
+        "are UTF-8)"
+    )

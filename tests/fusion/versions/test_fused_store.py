@@ -333,13 +333,14 @@ def test_shares_the_station_store_root_and_lock(tmp_path: Path, fused: FusedMagn
     """The station store reserves ``fused/``: it opens a root holding fused runs, and its
     write lock excludes a second writer (StoreBusyError after the timeout)."""
     from stations.errors import StoreBusyError
+    from tests.stations.store.lock_holder import held_by_another_thread
 
     stations = StationMagnitudeStore.open(tmp_path / "s", lock_timeout_s=0.0)
     store = FusedStore(tmp_path / "s", lock=stations.write_lock)
     store.write_run(fused, model_version=V1, now=T0)
     assert StationMagnitudeStore.open(tmp_path / "s").summary().rows_current == 0
     other = StationMagnitudeStore(tmp_path / "s", lock_timeout_s=0.0)
-    with other.write_lock(), pytest.raises(StoreBusyError):
+    with held_by_another_thread(other), pytest.raises(StoreBusyError):
         store.finalize("ML", before=T0)
 
 

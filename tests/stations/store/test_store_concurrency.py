@@ -14,8 +14,10 @@ import numpy as np
 import pytest
 
 import stations.store.commit as commit_mod
+import stations.store.lock as lock_mod
 from stations.errors import StoreBusyError
 from stations.store import StationMagnitudeStore
+from tests.stations.store.lock_holder import held_by_another_thread
 from tests.stations.store.store_frames import random_records, records
 
 REPO = Path(__file__).resolve().parents[3]
@@ -88,19 +90,19 @@ def test_second_writer_times_out_with_one_message(tmp_path: Path) -> None:
     other = StationMagnitudeStore.open(tmp_path / "store", lock_timeout_s=0.3)
     frame = records(["e1"], ["XX.A."], [2.0])
     messages: list[str] = []
-    with holder.write_lock():
+    with held_by_another_thread(holder):
         t0 = time.monotonic()
         with pytest.raises(StoreBusyError) as err:
             other.ingest(frame, None, source_file="x.csv", on_wait=messages.append)
         waited = time.monotonic() - t0
     root = tmp_path / "store"
+    holder_name = f"another magfuse process (pid {os.getpid()}, command {lock_mod._command})"
     assert str(err.value) == (
-        f"{root}: another writer (pid {os.getpid()}) still holds the store lock after 0.3 s; "
-        "run again when it has finished, or raise [store] lock_timeout_s"
+        f"{root} is busy: {holder_name} holds its writer lock; try again later (waited 0.3 s; "
+        "[store] lock_timeout_s sets the wait)"
     )
     assert messages == [
-        f"{root}: waiting up to 0.3 s for another writer (pid {os.getpid()}) to release the "
-        "store lock"
+        f"{root}: waiting up to 0.3 s for {holder_name} to release the store's writer lock"
     ]
     assert 0.3 <= waited < 2.0
     assert other.summary().batches == 0  # nothing half-written
@@ -126,6 +128,18 @@ def test_waiting_writer_goes_in_when_the_lock_is_released(tmp_path: Path) -> Non
     )
     thread.join()
     assert rep.accepted == 1 and len(messages) == 1
+
+
+def test_one_thread_holding_the_lock_never_waits_for_itself(tmp_path: Path) -> None:
+    """Two store objects of one folder in one process share the lock: the thread that holds it
+    through one of them re-enters it through the other instead of timing out on itself."""
+    first = StationMagnitudeStore.open(tmp_path / "store", lock_timeout_s=0.0)
+    second = StationMagnitudeStore.open(tmp_path / "store", lock_timeout_s=0.0)
+    with first.write_lock():
+        rep = second.ingest(records(["e1"], ["XX.A."], [2.0]), None, source_file="x")
+    assert rep.accepted == 1
+    with held_by_another_thread(first), pytest.raises(StoreBusyError):
+        second.ingest(records(["e2"], ["XX.A."], [2.0]), None, source_file="y")
 
 
 def test_write_lock_is_reentrant_for_one_store(tmp_path: Path) -> None:

@@ -212,8 +212,8 @@ def test_manifest_problems(tmp_path: Path) -> None:
     with pytest.raises(StoreCorruptError) as err:
         StationMagnitudeStore.open(tmp_path / "none", create=False)
     assert str(err.value) == (
-        f"{tmp_path / 'none'}: no magfuse store here (manifest.json is missing); ingest a "
-        "file first or pass the right --store"
+        f"{tmp_path / 'none'}: no magfuse store here (manifest.json is missing); pass the right "
+        f"--store, or create one with 'magfuse ingest FILE --store {tmp_path / 'none'}'"
     )
     (tmp_path / "home").mkdir()
     (tmp_path / "home" / "notes.txt").write_text("mine")
