@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any
 
@@ -13,9 +12,11 @@ from fusion.cli.common import (
     JsonOption,
     StoreOption,
     TypeOption,
+    echo_json,
     load,
     open_registry,
     open_store,
+    output_path,
     parse_time,
     print_advisory,
 )
@@ -100,6 +101,8 @@ def learn_command(
 
     cfg = load(config)
     st = open_store(cfg, store)
+    if csv is not None:
+        output_path(csv, option="--csv", kind="folder")
     reg = open_registry(st)
     outcome = learn_candidate(
         st,
@@ -112,11 +115,10 @@ def learn_command(
     )
     v = outcome.version
     if csv is not None:
-        csv.mkdir(parents=True, exist_ok=True)
         for name in ("stations", "pairs", "epochs"):
             reg.load_table(v, name).to_csv(csv / f"{v.version_id}-{name}.csv", index=False)
     if json_out:
-        typer.echo(json.dumps(dict(v.meta), indent=2, default=str))
+        echo_json(dict(v.meta))
     else:
         typer.echo("\n".join(_summary_lines(v)))
     print_advisory()
@@ -149,7 +151,7 @@ def models_command(
     actives = {v.magnitude_type: reg.active_id(v.magnitude_type) for v in versions}
     rows = [_version_row(v, actives[v.magnitude_type]) for v in versions]
     if json_out:
-        typer.echo(json.dumps(rows, indent=2, default=str))
+        echo_json(rows)
         return
     if not rows:
         typer.echo("no model versions yet; run 'magfuse learn'")

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Annotated
 
@@ -13,6 +12,7 @@ from fusion.cli.common import (
     JsonOption,
     StationsOption,
     StoreOption,
+    echo_json,
     load,
     open_registry,
     open_store,
@@ -63,7 +63,7 @@ def nightly_command(
         metadata=StationMetadata.read(meta_path) if meta_path else None,
     )
     if json_out:
-        typer.echo(json.dumps(report.to_dict(), indent=2, default=str))
+        echo_json(report.to_dict())
     else:
         typer.echo(report.render_text())
     print_advisory()

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import sys
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,6 +17,7 @@ from fusion.cli.common import (
     StationsOption,
     StoreOption,
     compute_setup,
+    echo_json,
     load,
     print_advisory,
     store_path,
@@ -237,7 +237,7 @@ def store_command(
     )
     summary = st.summary()
     if json_out:
-        typer.echo(json.dumps(summary.to_dict(), indent=2))
+        echo_json(summary.to_dict())
     else:
         typer.echo(render_summary(summary))
     print_advisory()

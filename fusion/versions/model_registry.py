@@ -38,6 +38,7 @@ import pandas as pd
 
 from fusion.model.parameters import StationParameters
 from fusion.network.gls_blocks import PairCovariance
+from stations import strict_json
 from stations.errors import ModelNotFoundError, StoreCorruptError
 from stations.store.atomic import fsync_dir, write_bytes_atomic
 
@@ -131,7 +132,7 @@ def _write_json_atomic(path: Path, payload: Mapping[str, Any]) -> None:
     The temporary name is fixed (``stations.store.atomic``), so a writer killed before its
     rename leaves a file that the next write simply overwrites.
     """
-    text = json.dumps(payload, indent=2, sort_keys=True, default=str)
+    text = strict_json.dumps(payload, indent=2, sort_keys=True)
     write_bytes_atomic(path, text.encode("utf-8"))
 
 
@@ -223,7 +224,7 @@ class ModelRegistry:
                     for name, frame in tables.items():
                         frame.to_parquet(tmp / "tables" / f"{name}.parquet", index=False)
                 with open(tmp / "meta.json", "w", encoding="utf-8") as fh:
-                    json.dump(full_meta, fh, indent=2, sort_keys=True, default=str)
+                    fh.write(strict_json.dumps(full_meta, indent=2, sort_keys=True))
                 for f in tmp.rglob("*"):
                     if f.is_file():
                         with open(f, "rb") as fh:

@@ -28,7 +28,6 @@ a candidate outside the adoption policy, or a candidate that waits for adoption 
 
 from __future__ import annotations
 
-import json
 import shutil
 from dataclasses import asdict, dataclass, field
 from datetime import UTC, datetime, timedelta
@@ -36,6 +35,7 @@ from enum import IntEnum
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from stations import strict_json
 from stations.errors import (
     InsufficientDataError,
     MagfuseError,
@@ -274,4 +274,4 @@ def _write_log(root: Path, report: NightlyReport, started: datetime) -> None:
     folder = root / LOG_DIR
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / f"{started:%Y%m%dT%H%M%S%fZ}.json"
-    path.write_text(json.dumps(report.to_dict(), indent=2, default=str) + "\n")
+    path.write_text(strict_json.dumps(report.to_dict(), indent=2) + "\n")

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from stations import strict_json
 from stations.errors import SchemaError, StoreCorruptError
 from stations.schema import SCHEMA_VERSION
 from stations.store.atomic import write_bytes_atomic
@@ -156,7 +157,7 @@ class Manifest:
             "batches": [asdict(b) for b in self.batches],
             "files": [asdict(f) for f in self.files],
         }
-        return json.dumps(doc, sort_keys=True, indent=1).encode("utf-8")
+        return strict_json.dumps(doc, sort_keys=True, indent=1).encode("utf-8")
 
 
 def _parse(doc: Any, where: Path) -> Manifest:
