@@ -66,7 +66,9 @@ class DryRunReport:
     stations : DataFrame
         station_id, share_before, share_after, share_change, bias_before, bias_after,
         bias_change, sigma_before, sigma_after, sigma_change, flags_before, flags_after,
-        flags_added, flags_removed (magnitude units; shares are fractions).
+        flags_added, flags_removed (magnitude units; shares are fractions) and outside_policy;
+        stations outside the adoption policy first, then by |share_change|
+        (:func:`order_by_policy`).
     changes : dict
         n, mean, rms, max_abs and quantiles of M̂_after − M̂_before (magnitude units).
     top_events : DataFrame
