@@ -104,6 +104,9 @@ class EventPicture:
     sd : ndarray
         s_i of the corrected magnitude (module docstring); NaN: no interval.
     weight, robust_weight, residual : ndarray
+    influence : ndarray
+        Network magnitude with the station minus without it (magnitude units; NaN: not
+        available), the sign of the event text and JSON.
     detected, outlier : ndarray of bool
     threshold : ndarray
         Noise threshold of a non-detection, magnitude units (NaN if unknown).
@@ -130,6 +133,7 @@ class EventPicture:
     weight: NDArray[np.float64]
     robust_weight: NDArray[np.float64]
     residual: NDArray[np.float64]
+    influence: NDArray[np.float64]
     detected: NDArray[np.bool_]
     outlier: NDArray[np.bool_]
     threshold: NDArray[np.float64]
@@ -240,6 +244,7 @@ def event_picture_from_tables(
         weight=weight,
         robust_weight=rw,
         residual=_num(rows, "residual", np.nan),
+        influence=_num(rows, "influence", np.nan),
         detected=detected,
         outlier=detected & (rw < outlier_weight),
         threshold=_num(rows, "threshold", np.nan),
@@ -290,6 +295,7 @@ def event_picture(
             "weight": [c.weight for c in cs],
             "robust_weight": [c.robust_weight for c in cs],
             "residual": [c.residual for c in cs],
+            "influence": [c.influence for c in cs],
             "detected": [bool(c.detected) for c in cs],
             "threshold": [c.threshold for c in cs],
             "flags": [";".join(c.flags) for c in cs],
@@ -545,6 +551,7 @@ def event_rows_table(pic: EventPicture) -> str:
             ("weight", fmt(pic.weight[order], ".3f"), False),
             ("robust weight", fmt(pic.robust_weight[order], ".2f"), False),
             ("residual", fmt(pic.residual[order], "+.3f"), False),
+            ("influence", fmt(pic.influence[order], "+.3f"), False),
             ("flags", np.array([esc(s) for s in pic.flags[order]], dtype=object), True),
         ]
     )
@@ -565,7 +572,8 @@ def event_page_html(pic: EventPicture, png: bytes, *, model_version: str = "") -
         + img(png, f"station and network magnitudes of event {pic.event_id}")
         + "\n<h2>Stations</h2>\n"
         + "<p>corrected = station magnitude + correction; for a non-detection the noise "
-        "threshold + correction (an upper bound, drawn as a triangle).</p>\n"
+        "threshold + correction (an upper bound, drawn as a triangle). influence = network "
+        "magnitude with the station minus network magnitude without it.</p>\n"
         + event_rows_table(pic)
     )
     return page(f"Event {pic.event_id}", body)

@@ -137,7 +137,7 @@ def test_event_shows_the_recorded_final_value_and_recomputes_only_when_asked(
 
 
 def test_largest_influence_in_the_summary_is_the_station_rows_value_with_its_sign(
-    learned_store: LearnedStore,
+    learned_store: LearnedStore, tmp_path: Path
 ) -> None:
     ls = learned_store
     fs = FusedStore(ls.root)
@@ -166,6 +166,12 @@ def test_largest_influence_in_the_summary_is_the_station_rows_value_with_its_sig
     doc = _strict(invoke("event", eid, "--json", *common).stdout)
     assert doc["event"]["max_influence"] == value
     assert doc["conventions"]["influence"].startswith("network magnitude with the station")
+    # The event page states the same convention and shows the same signed value.
+    page_path = tmp_path / "event.html"
+    assert invoke("event", eid, "--html", page_path, *common).exit_code == 0
+    page = page_path.read_text(encoding="utf-8")
+    assert "influence = network magnitude with the station minus" in page
+    assert f">{value:+.3f}<" in page
 
 
 def test_corrected_column_of_a_non_detection_is_its_corrected_threshold(
