@@ -373,7 +373,7 @@ def draw_event(fig: Any, pic: EventPicture) -> None:
             pic.magnitude,
             color=ROLE["network"],
             lw=1.8,
-            label=f"network {pic.magnitude_type} {pic.magnitude:.2f} ± {pic.se:.2f}",
+            label=f"network {pic.magnitude_type} {pic.magnitude:.2f} (SE {pic.se:.2f})",
         )
     if np.isfinite(pic.plain_mean):
         ax.axhline(

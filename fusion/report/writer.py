@@ -127,7 +127,7 @@ def _anchor_text(anchor: Any) -> str:
             try:
                 parts.append(f"value {float(value):+.3f}")
                 if se is not None:
-                    parts[-1] += f" ± {float(se):.3f}"
+                    parts[-1] += f" (SE {float(se):.3f})"
             except (TypeError, ValueError):
                 parts.append(f"value {value}")
         rest = {k: v for k, v in anchor.items() if k not in ("kind", "value", "se")}
