@@ -110,6 +110,9 @@ class EventExplanation:
                 **_estimate_dict(self.recomputed),
             }
         out["conventions"] = dict(CONVENTIONS)
+        out["notes"] = (
+            [_SINGLE_NOTE.split(maxsplit=1)[1]] if "single-station" in self.estimate.flags else []
+        )
         out["advisory"] = ADVISORY
         return out
 

@@ -91,6 +91,7 @@ def test_every_json_output_and_file_is_strict_json_with_flags_as_lists(
     one_doc = _strict(outputs[f"event {one}"].stdout)
     assert one_doc["event"]["flags"] == list(one_doc["flags"])
     assert "single-station" in one_doc["flags"]
+    assert one_doc["notes"][0].startswith("one detecting station: the value rests on its reading")
     # Every JSON file magfuse wrote into the store is strict too.
     files = sorted(root.rglob("*.json"))
     assert files
