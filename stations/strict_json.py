@@ -81,4 +81,7 @@ def dumps(value: Any, **kwargs: Any) -> str:
     if kwargs.pop("allow_nan", False):
         raise ValueError("magfuse writes strict JSON only; allow_nan=True is not supported")
     kwargs.pop("default", None)
-    return json.dumps(to_jsonable(value), allow_nan=False, **kwargs)
+    try:  # plain data (the common case) serialises directly, without a converted copy
+        return json.dumps(value, allow_nan=False, **kwargs)
+    except (TypeError, ValueError):
+        return json.dumps(to_jsonable(value), allow_nan=False, **kwargs)

@@ -66,7 +66,6 @@ for the rejected rows only, so a file of millions of rows costs a few array pass
 
 from __future__ import annotations
 
-import json
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -78,6 +77,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from numpy.typing import NDArray
 
+from stations import strict_json
 from stations.errors import ConfigError
 from stations.schema import (
     INPUT_COLUMNS,
@@ -644,6 +644,6 @@ def json_rows(frame: pd.DataFrame) -> Callable[[NDArray[np.int64]], list[str]]:
     def rows(idx: NDArray[np.int64]) -> list[str]:
         subset = frame.iloc[idx].astype(object)
         subset = subset.where(subset.notna(), None)
-        return [json.dumps(rec, default=str) for rec in subset.to_dict(orient="records")]
+        return [strict_json.dumps(rec) for rec in subset.to_dict(orient="records")]
 
     return rows

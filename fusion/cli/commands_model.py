@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any
 
@@ -13,9 +12,11 @@ from fusion.cli.common import (
     JsonOption,
     StoreOption,
     TypeOption,
+    echo_json,
     load,
     open_registry,
     open_store,
+    output_path,
     parse_time,
     print_advisory,
     writing,
@@ -101,9 +102,9 @@ def learn_command(
 
     cfg = load(config)
     st = open_store(cfg, store)
-    reg = open_registry(st)
     if csv is not None:
-        _csv_folder(csv)  # before the fit: a bad --csv must not fail after the save
+        output_path(csv, option="--csv", kind="folder")
+    reg = open_registry(st)
     outcome = learn_candidate(
         st,
         reg,
@@ -118,9 +119,7 @@ def learn_command(
         for name in ("stations", "pairs", "epochs"):
             reg.load_table(v, name).to_csv(csv / f"{v.version_id}-{name}.csv", index=False)
     if json_out:
-        typer.echo(
-            json.dumps({**v.meta, "identical_to": outcome.identical_to}, indent=2, default=str)
-        )
+        echo_json({**v.meta, "identical_to": outcome.identical_to})
     elif outcome.identical_to is not None:
         state = "the active model" if reg.active_id(v.magnitude_type) == v.version_id else "stored"
         typer.echo(
@@ -130,19 +129,6 @@ def learn_command(
     else:
         typer.echo("\n".join(_summary_lines(v)))
     print_advisory()
-
-
-def _csv_folder(folder: Path) -> None:
-    """Create the ``--csv`` folder, or say in one line why it cannot be."""
-    from stations.errors import ConfigError
-
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise ConfigError(
-            f"--csv {folder}: cannot create the folder ({exc.strerror}); pass a folder that "
-            "can be written"
-        ) from None
 
 
 def _version_row(v: ModelVersion, active: str | None) -> dict[str, Any]:
@@ -172,7 +158,7 @@ def models_command(
     actives = {v.magnitude_type: reg.active_id(v.magnitude_type) for v in versions}
     rows = [_version_row(v, actives[v.magnitude_type]) for v in versions]
     if json_out:
-        typer.echo(json.dumps(rows, indent=2, default=str))
+        echo_json(rows)
         return
     if not rows:
         typer.echo("no model versions yet; run 'magfuse learn'")

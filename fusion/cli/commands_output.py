@@ -19,6 +19,7 @@ from fusion.cli.common import (
     load,
     open_registry,
     open_store,
+    output_path,
     parse_time,
     print_advisory,
     writing,
@@ -147,6 +148,9 @@ def export_command(
     cfg = load(config)
     st = open_store(cfg, store)
     mtype = type or cfg.learn.magnitude_type
+    if what is not ExportWhat.magnitudes and format is ExportFormatChoice.quakeml:
+        raise ConfigError(f"{what.value} tables export as csv or parquet, not quakeml")
+    output_path(out, option="--out", kind="file")
     if what is ExportWhat.magnitudes:
         start, end = parse_time(since, "--since"), parse_time(until, "--until")
         readings = None
@@ -162,8 +166,6 @@ def export_command(
             readings=readings,
         )
     else:
-        if format is ExportFormatChoice.quakeml:
-            raise ConfigError(f"{what.value} tables export as csv or parquet, not quakeml")
         reg = open_registry(st)
         v = resolve_version(reg, mtype, version)
         report = export_model_table(reg, v, what.value, out, format=format.value)
@@ -188,6 +190,7 @@ def report_command(
 
     cfg = load(config)
     st = open_store(cfg, store)
+    output_path(out, option="--out", kind="folder")
     meta_path = stations or (Path(cfg.compute.stations) if cfg.compute.stations else None)
     files = write_model_report(
         st,

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Annotated
 
@@ -14,9 +13,11 @@ from fusion.cli.common import (
     StoreOption,
     TypeOption,
     VersionOption,
+    echo_json,
     load,
     open_registry,
     open_store,
+    output_path,
     print_advisory,
 )
 
@@ -35,22 +36,48 @@ HtmlOption = Annotated[
 PngOption = Annotated[Path | None, typer.Option("--png", help="Also write the picture as PNG.")]
 
 
+RecomputeOption = Annotated[
+    bool,
+    typer.Option(
+        "--recompute",
+        help="Also fuse the event now with the active model (or --version) and show that "
+        "value beside the recorded one.",
+    ),
+]
+
+
 def event_command(
     event_id: Annotated[str, typer.Argument(help="Event id as stored.")],
     type: TypeOption = None,
     version: VersionOption = None,
+    recompute: RecomputeOption = False,
     json_out: JsonOption = False,
     html: HtmlOption = None,
     png: PngOption = None,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:
-    """Explain one event's network magnitude: weights, residuals, leave-one-out checks."""
+    """Explain one event's network magnitude: weights, residuals, leave-one-out checks.
+
+    Shows the value on record (status and model version) when the event was fused; the
+    active model's value only with --recompute (or --version).
+    """
     from fusion.workflows.event_view import explain_event, render_event
 
     cfg = load(config)
     st = open_store(cfg, store)
-    ex = explain_event(st, open_registry(st), cfg, event_id, magnitude_type=type, version=version)
+    for path, option in ((html, "--html"), (png, "--png")):
+        if path is not None:
+            output_path(path, option=option, kind="file")
+    ex = explain_event(
+        st,
+        open_registry(st),
+        cfg,
+        event_id,
+        magnitude_type=type,
+        version=version,
+        recompute=recompute,
+    )
     if html is not None or png is not None:
         from fusion.report import write_event_figure
 
@@ -58,14 +85,16 @@ def event_command(
             if path is not None:
                 write_event_figure(ex, path, fmt=fmt)
     if json_out:
-        typer.echo(json.dumps(ex.to_dict(), indent=2, default=str))
+        echo_json(ex.to_dict())
     else:
         typer.echo(render_event(ex))
 
 
 CandidateArgument = Annotated[
     str | None,
-    typer.Argument(help="Candidate version (default: the newest version that is not active)."),
+    typer.Argument(
+        help="Candidate version (default: the newest version created after the active one)."
+    ),
 ]
 DaysOption = Annotated[
     float | None, typer.Option("--days", help="Recent events compared, days ([nightly]).")
@@ -88,12 +117,25 @@ def diff_command(
 
     Writes nothing.
     """
-    from fusion.workflows.dry_run import dry_run
+    from fusion.workflows.dry_run import dry_run, newer_candidate, no_candidate_message
 
     cfg = load(config)
     st = open_store(cfg, store)
+    registry = open_registry(st)
+    if candidate is None:
+        mtype = type or cfg.learn.magnitude_type
+        newer = newer_candidate(registry, mtype)
+        if newer is None:
+            message = no_candidate_message(registry, mtype)
+            if json_out:
+                echo_json({"magnitude_type": mtype, "candidate_version": None, "note": message})
+            else:
+                typer.echo(message)
+            print_advisory()
+            return
+        candidate = newer.version_id
     report = dry_run(
-        st, open_registry(st), cfg, magnitude_type=type, candidate=candidate, days=days, top=top
+        st, registry, cfg, magnitude_type=type, candidate=candidate, days=days, top=top
     )
     ok, reasons = report.within_policy(
         max_weight_share_change=cfg.nightly.max_weight_share_change,
@@ -103,7 +145,7 @@ def diff_command(
         payload = report.to_dict()
         payload["within_policy"] = ok
         payload["policy_reasons"] = reasons
-        typer.echo(json.dumps(payload, indent=2, default=str))
+        echo_json(payload)
     else:
         typer.echo(report.render_text())
         typer.echo("")

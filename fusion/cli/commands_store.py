@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import sys
 from dataclasses import dataclass
 from pathlib import Path
@@ -19,6 +18,7 @@ from fusion.cli.common import (
     StoreOption,
     TypeOption,
     compute_setup,
+    echo_json,
     load,
     open_store,
     print_advisory,
@@ -280,7 +280,7 @@ def store_command(
     )
     summary = st.summary()
     if json_out:
-        typer.echo(json.dumps(summary.to_dict(), indent=2))
+        echo_json(summary.to_dict())
     else:
         typer.echo(render_summary(summary))
     print_advisory()

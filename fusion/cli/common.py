@@ -5,7 +5,7 @@ from __future__ import annotations
 from contextlib import AbstractContextManager
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, Literal
 
 import typer
 
@@ -145,6 +145,67 @@ def writing(store: StationMagnitudeStore) -> AbstractContextManager[None]:
 def store_path(config_store: Path, option: Path | None) -> Path:
     """The store directory: ``--store`` if given, else the configuration's."""
     return option if option is not None else config_store
+
+
+def output_path(path: Path, *, option: str, kind: Literal["file", "folder"]) -> Path:
+    """Check an output path before any work is done; create its missing folder and say so.
+
+    Every command that writes files (``event --html/--png``, ``report --out``, ``export --out``,
+    ``learn --csv``) calls this first, so they all behave the same way: a missing folder is
+    created (one line on stderr names it), and a path of the wrong kind (a folder where a file
+    is expected, or a file where a folder is) is a one-line error before anything is computed
+    or saved.
+
+    Parameters
+    ----------
+    path : Path
+        The path given on the command line.
+    option : str
+        The option's name for messages, e.g. ``"--html"``.
+    kind : {'file', 'folder'}
+        What the command writes at ``path``.
+
+    Returns
+    -------
+    Path
+        ``path``, whose folder (``kind='file'``) or itself (``kind='folder'``) now exists.
+
+    Raises
+    ------
+    ConfigError
+        ``path`` (or a folder on the way to it) exists as the wrong kind.
+    """
+    from stations.errors import ConfigError
+
+    folder = path.parent if kind == "file" else path
+    if kind == "file" and path.is_dir():
+        raise ConfigError(f"{option} {path} is a folder; give a file name, e.g. {path / 'out'}")
+    if kind == "folder" and path.exists() and not path.is_dir():
+        raise ConfigError(f"{option} {path} is a file; give a folder for the output files")
+    missing = folder
+    while not missing.exists() and missing.parent != missing:
+        missing = missing.parent
+    if missing.exists() and not missing.is_dir():
+        raise ConfigError(
+            f"{option} {path}: {missing} is a file, not a folder; choose another path"
+        )
+    if not folder.exists():
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise ConfigError(
+                f"{option} {path}: cannot create the folder {folder} "
+                f"({exc.strerror or exc}); choose a writable path"
+            ) from None
+        typer.echo(f"created folder {folder} for {option}", err=True)
+    return path
+
+
+def echo_json(value: object) -> None:
+    """Print ``value`` as strict JSON (RFC 8259: no NaN or Infinity; missing values are null)."""
+    from stations.strict_json import dumps
+
+    typer.echo(dumps(value, indent=2))
 
 
 def print_advisory() -> None:

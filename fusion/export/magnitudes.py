@@ -48,7 +48,7 @@ the unit and the fused-store column it comes from:
 ``mag_uncertainty_jackknife`` (magnitude units; from ``jackknife_se``)
     jackknife standard error (station_count >= 4; Efron & Stein 1981)
 ``max_influence`` (magnitude units; from ``max_influence``)
-    largest change of mag when one station is left out
+    mag with minus mag without the station whose |influence| is largest (signed)
 ``max_influence_station`` (-; from ``max_influence_station``)
     station of max_influence (NET.STA.LOC)
 ``max_abs_z`` (1; from ``max_abs_z``)
@@ -196,7 +196,7 @@ MAGNITUDE_COLUMNS: Final = (
         "max_influence",
         _F,
         _MU,
-        "largest change of mag when one station is left out",
+        "mag with minus mag without the station whose |influence| is largest (signed)",
     ),
     ColumnSpec(
         "max_influence_station",

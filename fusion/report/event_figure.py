@@ -32,6 +32,7 @@ from numpy.typing import NDArray
 from scipy import special
 
 from fusion.advisory import ADVISORY
+from fusion.network.network_magnitude import interval_name
 from fusion.report.drawing import new_figure, png_bytes
 from fusion.report.html_page import esc, fmt, img, page, table
 from fusion.report.inputs import as_bool, codes_in
@@ -103,6 +104,9 @@ class EventPicture:
     sd : ndarray
         s_i of the corrected magnitude (module docstring); NaN: no interval.
     weight, robust_weight, residual : ndarray
+    influence : ndarray
+        Network magnitude with the station minus without it (magnitude units; NaN: not
+        available), the sign of the event text and JSON.
     detected, outlier : ndarray of bool
     threshold : ndarray
         Noise threshold of a non-detection, magnitude units (NaN if unknown).
@@ -129,6 +133,7 @@ class EventPicture:
     weight: NDArray[np.float64]
     robust_weight: NDArray[np.float64]
     residual: NDArray[np.float64]
+    influence: NDArray[np.float64]
     detected: NDArray[np.bool_]
     outlier: NDArray[np.bool_]
     threshold: NDArray[np.float64]
@@ -239,6 +244,7 @@ def event_picture_from_tables(
         weight=weight,
         robust_weight=rw,
         residual=_num(rows, "residual", np.nan),
+        influence=_num(rows, "influence", np.nan),
         detected=detected,
         outlier=detected & (rw < outlier_weight),
         threshold=_num(rows, "threshold", np.nan),
@@ -289,6 +295,7 @@ def event_picture(
             "weight": [c.weight for c in cs],
             "robust_weight": [c.robust_weight for c in cs],
             "residual": [c.residual for c in cs],
+            "influence": [c.influence for c in cs],
             "detected": [bool(c.detected) for c in cs],
             "threshold": [c.threshold for c in cs],
             "flags": [";".join(c.flags) for c in cs],
@@ -360,13 +367,13 @@ def draw_event(fig: Any, pic: EventPicture) -> None:
             hi,
             color=ROLE["model"],
             alpha=0.25,
-            label=f"network {100 * pic.level:.0f} % interval",
+            label=f"network {interval_name(pic.level)}",
         )
         ax.axhline(
             pic.magnitude,
             color=ROLE["network"],
             lw=1.8,
-            label=f"network {pic.magnitude_type} {pic.magnitude:.2f} ± {pic.se:.2f}",
+            label=f"network {pic.magnitude_type} {pic.magnitude:.2f} (SE {pic.se:.2f})",
         )
     if np.isfinite(pic.plain_mean):
         ax.axhline(
@@ -389,7 +396,7 @@ def draw_event(fig: Any, pic: EventPicture) -> None:
             ecolor=ROLE["station"],
             elinewidth=1.0,
             capsize=2,
-            label=f"station {100 * pic.level:.0f} % interval",
+            label=f"station {interval_name(pic.level)}",
         )
         pos = d & (pic.weight >= 0) & ~pic.outlier
         neg = d & (pic.weight < 0)
@@ -519,6 +526,15 @@ def _map_panel(ax: Any, pic: EventPicture, area: NDArray[np.float64]) -> None:
     ax.legend(loc="upper left", fontsize=7)
 
 
+def _corrected_text(pic: EventPicture) -> NDArray[Any]:
+    """Corrected magnitudes; a non-detection shows "< threshold + correction" as plotted."""
+    out = fmt(pic.corrected, ".3f")
+    nd = ~pic.detected & np.isfinite(pic.threshold)
+    bound = pic.threshold[nd] + np.nan_to_num(pic.correction[nd])
+    out[nd] = np.array([f"&lt; {v:.3f}" for v in bound], dtype=object)
+    return out
+
+
 def event_rows_table(pic: EventPicture) -> str:
     """HTML table of the event's rows, heaviest weight first."""
     order = np.argsort(-np.abs(np.nan_to_num(pic.weight)), kind="stable")
@@ -530,11 +546,12 @@ def event_rows_table(pic: EventPicture) -> str:
             ("distance (km)", fmt(pic.distance_km[order], ".1f"), False),
             ("raw", fmt(pic.raw[order], ".3f"), False),
             ("correction", fmt(pic.correction[order], "+.3f"), False),
-            ("corrected", fmt(pic.corrected[order], ".3f"), False),
-            (f"± {100 * pic.level:.0f} %", fmt(z * pic.sd[order], ".3f"), False),
+            ("corrected", _corrected_text(pic)[order], False),
+            (f"± ({interval_name(pic.level)})", fmt(z * pic.sd[order], ".3f"), False),
             ("weight", fmt(pic.weight[order], ".3f"), False),
             ("robust weight", fmt(pic.robust_weight[order], ".2f"), False),
             ("residual", fmt(pic.residual[order], "+.3f"), False),
+            ("influence", fmt(pic.influence[order], "+.3f"), False),
             ("flags", np.array([esc(s) for s in pic.flags[order]], dtype=object), True),
         ]
     )
@@ -547,13 +564,16 @@ def event_page_html(pic: EventPicture, png: bytes, *, model_version: str = "") -
     body = (
         f"<h1>Event {esc(pic.event_id)}: network magnitude {esc(pic.magnitude_type)}</h1>\n"
         f'<p class="caution">{esc(ADVISORY)}</p>\n'
-        f"<p>Network magnitude <b>{pic.magnitude:.2f}</b> ± {pic.se:.2f} (1σ); "
-        f"{100 * pic.level:.0f} % interval [{ci[0]:.2f}, {ci[1]:.2f}]. Plain mean of the raw "
+        f"<p>Network magnitude <b>{pic.magnitude:.2f}</b>, SE {pic.se:.2f}; "
+        f"{interval_name(pic.level)} [{ci[0]:.2f}, {ci[1]:.2f}]. Plain mean of the raw "
         f"station magnitudes {pic.plain_mean:.2f}; difference "
         f"{pic.magnitude - pic.plain_mean:+.2f}. "
         f"Detections used: {int(np.count_nonzero(pic.detected))}.{model}</p>\n"
         + img(png, f"station and network magnitudes of event {pic.event_id}")
         + "\n<h2>Stations</h2>\n"
+        + "<p>corrected = station magnitude + correction; for a non-detection the noise "
+        "threshold + correction (an upper bound, drawn as a triangle). influence = network "
+        "magnitude with the station minus network magnitude without it.</p>\n"
         + event_rows_table(pic)
     )
     return page(f"Event {pic.event_id}", body)

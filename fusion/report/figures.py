@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 from numpy.typing import NDArray
 
+from fusion.network.network_magnitude import interval_name
 from fusion.report.drawing import binned_quantiles, new_figure, png_bytes
 from fusion.report.palette import ROLE
 
@@ -50,7 +51,7 @@ def sigma_ranking_figure(table: pd.DataFrame, level: float, attention: NDArray[n
                 hi[has_ci],
                 color=ROLE["model"],
                 linewidth=0.8 if s.shape[0] < 300 else 0.4,
-                label=f"{100 * level:.0f} % interval",
+                label=interval_name(level),
             )
         ax.plot(rank[~att], s[~att], "o", ms=3, color=ROLE["station"], label="station unit")
         if np.any(att):
@@ -269,7 +270,7 @@ def _offset_panel(ax_t: Any, d: StationPanelData) -> None:
         )
     ax_t.set_xlabel("origin time (UTC)")
     ax_t.set_ylabel(f"station − network ({_MAG})")
-    ax_t.set_title(f"(a) offset over time, bias with {100 * d.level:.0f} % interval")
+    ax_t.set_title(f"(a) offset over time, bias with {interval_name(d.level)}")
     if ax_t.get_legend_handles_labels()[0]:
         ax_t.legend(loc="upper left")
     for lab in ax_t.get_xticklabels():

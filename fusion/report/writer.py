@@ -33,6 +33,7 @@ from numpy.typing import NDArray
 
 from fusion.advisory import ADVISORY
 from fusion.model.diagnostics import TREND_T_ALARM, chance_flag_rate, grouped_wls_slope
+from fusion.network.network_magnitude import interval_name
 from fusion.network.summaries import (
     censoring_summary,
     difference_summary,
@@ -130,7 +131,7 @@ def _anchor_text(anchor: Any) -> str:
             try:
                 parts.append(f"value {float(value):+.3f}")
                 if se is not None:
-                    parts[-1] += f" ± {float(se):.3f}"
+                    parts[-1] += f" (SE {float(se):.3f})"
             except (TypeError, ValueError):
                 parts.append(f"value {value}")
         rest = {k: v for k, v in anchor.items() if k not in ("kind", "value", "se")}
@@ -179,7 +180,7 @@ def _meta_block(inputs: ReportInputs, since: Any, level: float) -> str:
         ("anchor", esc(_anchor_text(m.get("anchor")) or "(not given)")),
         ("model created", esc(_ts(m.get("created")) or "(not given)")),
         ("report window", esc(f"events since {_ts(since)}" if since is not None else "all events")),
-        ("interval level (bias, σ)", f"{100 * level:.0f} %"),
+        ("intervals (bias, σ, network magnitudes)", esc(interval_name(level))),
     ]
     cells = "".join(f"<tr><th class='t'>{k}</th><td>{v}</td></tr>" for k, v in rows)
     return f'<table class="meta">{cells}</table>'
@@ -258,7 +259,7 @@ def write_station_report(
     since: Any = None,
     max_station_sections: int = 40,
     top_by_weight: int = 10,
-    level: float = 0.95,
+    level: float = 0.68,
     n_affected_events: int = 20,
     n_event_pictures: int = 3,
     max_outliers_listed: int = 15,
@@ -285,8 +286,9 @@ def write_station_report(
         Full station sections at most (rule: :mod:`fusion.report.sections`).
     top_by_weight : int, default=10
         The heaviest stations always get a section.
-    level : float, default=0.95
-        Coverage of the bias and σ intervals, a fraction.
+    level : float, default=0.68
+        Coverage of the bias and σ intervals, a fraction; ``magfuse report`` passes
+        ``[network] confidence_level`` so that every interval magfuse shows has one level.
     n_affected_events : int, default=20
         Rows of the "events most affected" table.
     n_event_pictures : int, default=3
@@ -482,7 +484,7 @@ def _summary_part(cx: _Context, *, n_affected_events: int, n_event_pictures: int
     pg.figure(
         sigma_ranking_figure(st, level, att),
         "station units ranked by error SD",
-        f"Error SD σ̃ of every unit with its {100 * level:.0f} % chi-square interval "
+        f"Error SD σ̃ of every unit with its {interval_name(level)} (chi-square) "
         "(no interval: degrees of freedom unknown). Crosses: units with an attention flag.",
     )
     if n_events:
@@ -766,7 +768,7 @@ def _station_rows(
     *,
     compact: bool = False,
 ) -> str:
-    pct = f"{100 * level:.0f} %"
+    pct = interval_name(level)
 
     def col(name: str, spec: str) -> NDArray[np.object_]:
         return fmt(st[name].to_numpy()[rows], spec)
@@ -931,14 +933,13 @@ def _notes(
     outlier_rate_alert: float,
     chance: float,
 ) -> str:
-    pct = f"{100 * level:.0f} %"
+    pct = interval_name(level)
     items = [
         "Bias b̂ is the station's offset from the network, relative to the anchor; a station "
-        "correction is −b̂. Its interval is b̂ ± z·SE, z the normal quantile for "
-        f"{pct}.",
+        "correction is −b̂. Its interval (the same level as every interval in magfuse, "
+        f"[network] confidence_level) is the {pct} b̂ ± z·SE, z the normal quantile.",
         "σ̃ is the station's error SD after the empirical-Bayes moderation of the fit; its "
-        f"interval is the chi-square interval for an SD with the unit's degrees of freedom "
-        f"({pct}).",
+        f"interval is the chi-square {pct} for an SD with the unit's degrees of freedom.",
         "Weight share: the sum of the station's normalised weights over the window's events, "
         "divided by the number of events with a network magnitude. Shares add up to 1 over "
         "all stations.",

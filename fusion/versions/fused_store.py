@@ -75,6 +75,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from stations import strict_json
 from stations.errors import ConfigError, SchemaError, StoreCorruptError
 from stations.schema import check_schema, normalise_magnitude_type
 from stations.store.atomic import ensure_dir, write_bytes_atomic
@@ -175,7 +176,13 @@ FUSED_EVENTS_SCHEMA: Final = pa.schema(
         _field("plain_mean", pa.float64(), nullable=True, unit=_MU, doc="mean of raw values"),
         _field("median", pa.float64(), nullable=True, unit=_MU, doc="median of raw values"),
         _field("minus_plain_mean", pa.float64(), nullable=True, unit=_MU, doc="mag - mean"),
-        _field("max_influence", pa.float64(), nullable=True, unit=_MU, doc="largest |influence|"),
+        _field(
+            "max_influence",
+            pa.float64(),
+            nullable=True,
+            unit=_MU,
+            doc="signed influence of the largest |influence| row",
+        ),
         _field("max_influence_station", pa.string(), nullable=True, doc="its station"),
         _field("max_abs_z", pa.float64(), nullable=True, unit="1", doc="largest |LOSO z|"),
         _field("jackknife_se", pa.float64(), nullable=True, unit=_MU, doc="n >= 4 only"),
@@ -397,7 +404,7 @@ class _Manifest:
             },
             "retired": list(self.retired),
         }
-        return json.dumps(doc, indent=1, sort_keys=True).encode("utf-8")
+        return strict_json.dumps(doc, indent=1, sort_keys=True).encode("utf-8")
 
 
 def _load_manifest(path: Path) -> _Manifest:

@@ -43,6 +43,7 @@ import pandas as pd
 
 from fusion.model.parameters import StationParameters
 from fusion.network.gls_blocks import PairCovariance
+from stations import strict_json
 from stations.errors import ConfigError, ModelNotFoundError, StoreCorruptError
 from stations.schema import MagnitudeType, normalise_magnitude_type
 from stations.store.atomic import fsync_dir, write_bytes_atomic
@@ -181,7 +182,7 @@ def _write_json_atomic(path: Path, payload: Mapping[str, Any]) -> None:
     The temporary name is fixed (``stations.store.atomic``), so a writer killed before its
     rename leaves a file that the next write simply overwrites.
     """
-    text = json.dumps(payload, indent=2, sort_keys=True, default=str)
+    text = strict_json.dumps(payload, indent=2, sort_keys=True)
     write_bytes_atomic(path, text.encode("utf-8"))
 
 
@@ -282,14 +283,14 @@ class ModelRegistry:
                     for name, frame in tables.items():
                         frame.to_parquet(tmp / "tables" / f"{name}.parquet", index=False)
                 with open(tmp / "meta.json", "w", encoding="utf-8") as fh:
-                    json.dump(full_meta, fh, indent=2, sort_keys=True, default=str)
+                    fh.write(strict_json.dumps(full_meta, indent=2, sort_keys=True))
                 sums = {
                     f.relative_to(tmp).as_posix(): sha256_of(f)
                     for f in sorted(tmp.rglob("*"))
                     if f.is_file()
                 }
                 with open(tmp / _CHECKSUMS, "w", encoding="utf-8") as fh:
-                    json.dump(sums, fh, indent=2, sort_keys=True)
+                    fh.write(strict_json.dumps(sums, indent=2, sort_keys=True))
                 for f in tmp.rglob("*"):
                     if f.is_file():
                         with open(f, "rb") as fh:

@@ -278,10 +278,12 @@ def _echo_model(echo: Callable[[str], None], m: dict[str, Any] | Any) -> None:
 
 
 def _render_scores(scores: pd.DataFrame, level: float) -> str:
+    from fusion.network.network_magnitude import interval_name
+
     lines = [
         "errors against the true magnitudes, after removing one common level offset per method",
         f"{'method':<11} {'events':>6} {'RMSE':>7} {'raw RMSE':>9} {'offset':>7} "
-        f"{round(level * 100)}% coverage",
+        f"coverage of the {interval_name(level)}",
     ]
     for r in scores.to_dict(orient="records"):
         cov = "" if not np.isfinite(r["coverage"]) else f"{r['coverage']:.3f}"

@@ -39,7 +39,14 @@ if TYPE_CHECKING:
     from fusion.versions.model_registry import ModelRegistry, ModelVersion
     from stations.store import StationMagnitudeStore
 
-__all__ = ["DryRunReport", "censoring_summary", "dry_run", "newest_candidate"]
+__all__ = [
+    "DryRunReport",
+    "censoring_summary",
+    "dry_run",
+    "newer_candidate",
+    "newest_candidate",
+    "no_candidate_message",
+]
 
 #: Quantiles of the magnitude changes reported.
 _QUANTILES = (0.0, 0.05, 0.25, 0.5, 0.75, 0.95, 1.0)
@@ -60,7 +67,9 @@ class DryRunReport:
     stations : DataFrame
         station_id, share_before, share_after, share_change, bias_before, bias_after,
         bias_change, sigma_before, sigma_after, sigma_change, flags_before, flags_after,
-        flags_added, flags_removed (magnitude units; shares are fractions).
+        flags_added, flags_removed (magnitude units; shares are fractions) and outside_policy;
+        stations outside the adoption policy first, then by |share_change|
+        (:func:`order_by_policy`).
     changes : dict
         n, mean, rms, max_abs and quantiles of M̂_after − M̂_before (magnitude units).
     top_events : DataFrame
@@ -110,10 +119,15 @@ class DryRunReport:
 
         def records(frame: pd.DataFrame) -> list[dict[str, Any]]:
             out = frame.astype(object).where(frame.notna(), None)
-            return [
+            rows = [
                 {str(k): (v.isoformat() if hasattr(v, "isoformat") else v) for k, v in r.items()}
                 for r in out.to_dict(orient="records")
             ]
+            for r in rows:  # flags are lists in every JSON magfuse writes
+                for k in ("flags_before", "flags_after", "flags_added", "flags_removed"):
+                    if k in r:
+                        r[k] = sorted(_flags(str(r[k] or "")))
+            return rows
 
         return {
             "magnitude_type": self.magnitude_type,
@@ -126,6 +140,7 @@ class DryRunReport:
             "stations": records(self.stations),
             "top_events": records(self.top_events),
             "censoring": self.censoring,
+            "policy": self.policy,
         }
 
     def render_text(self, *, max_stations: int = 25) -> str:
@@ -148,15 +163,13 @@ class DryRunReport:
             ),
             "",
         ]
-        s = self.stations.reindex(
-            self.stations["share_change"].abs().sort_values(ascending=False).index
-        ).head(max_stations)
+        s = self.stations.head(max_stations)  # policy breakers first (order_by_policy)
         lines.append(
             f"{'station':<14} {'share':>6} {'->':>2} {'share':<6} {'d share':>8} "
             f"{'d bias':>7} {'d sigma':>8}  flags"
         )
         for r in s.to_dict(orient="records"):
-            flags = []
+            flags = ["OUTSIDE POLICY"] if r.get("outside_policy") else []
             if r["flags_added"]:
                 flags.append("+" + ",+".join(str(r["flags_added"]).split(";")))
             if r["flags_removed"]:
@@ -216,15 +229,37 @@ def _flags(text: str) -> set[str]:
     return set(text.split(";")) - {""}
 
 
+def newer_candidate(registry: ModelRegistry, magnitude_type: str) -> ModelVersion | None:
+    """The newest version created after the active one (any version if none is active).
+
+    Returns None when every stored version is the active one or older than it: an older,
+    superseded version is never what "the candidate" means.
+    """
+    active_id = registry.active_id(magnitude_type)
+    versions = registry.versions(magnitude_type)
+    if active_id is not None:
+        active = registry.get(active_id)
+        versions = [v for v in versions if v.version_id != active_id and v.created > active.created]
+    return versions[-1] if versions else None
+
+
+def no_candidate_message(registry: ModelRegistry, magnitude_type: str) -> str:
+    """What ``magfuse diff`` says when :func:`newer_candidate` finds nothing."""
+    active_id = registry.active_id(magnitude_type)
+    if active_id is None:
+        return f"no {magnitude_type} model version to compare; run 'magfuse learn'"
+    return (
+        f"no candidate newer than the active version {active_id}; run 'magfuse learn' "
+        "(or name an older version: magfuse diff VERSION)"
+    )
+
+
 def newest_candidate(registry: ModelRegistry, magnitude_type: str) -> ModelVersion:
-    """The most recently created version of a type that is not the active one."""
-    active = registry.active_id(magnitude_type)
-    versions = [v for v in registry.versions(magnitude_type) if v.version_id != active]
-    if not versions:
-        raise ModelNotFoundError(
-            f"no {magnitude_type} candidate model to compare; run 'magfuse learn' first"
-        )
-    return versions[-1]
+    """:func:`newer_candidate`, or :class:`ModelNotFoundError` when there is none."""
+    cand = newer_candidate(registry, magnitude_type)
+    if cand is None:
+        raise ModelNotFoundError(no_candidate_message(registry, magnitude_type))
+    return cand
 
 
 def _station_state(registry: ModelRegistry, version: ModelVersion | None) -> pd.DataFrame:
@@ -275,7 +310,8 @@ def dry_run(
     Parameters
     ----------
     candidate : str, optional
-        Version id; default the newest version that is not active.
+        Version id; default the newest version created after the active one
+        (:func:`newer_candidate`).
     days : float, optional
         Recent window in days (default ``[nightly] dry_run_days``).
     top : int, optional
@@ -338,7 +374,11 @@ def dry_run(
         ";".join(sorted(set(b.split(";")) - set(a.split(";")) - {""}))
         for a, b in zip(fa, fb, strict=True)
     ]
-    stations = stations.reset_index()
+    policy = {
+        "max_weight_share_change": float(cfg.nightly.max_weight_share_change),
+        "max_bias_change": float(cfg.nightly.max_bias_change),
+    }
+    stations = order_by_policy(stations.reset_index(), **policy)
 
     changes: dict[str, Any] = {"n": int(change.shape[0])}
     if change.shape[0]:
@@ -364,8 +404,29 @@ def dry_run(
         stations=stations,
         changes=changes,
         top_events=top_events,
+        policy=policy,
         censoring=censoring,
     )
+
+
+def order_by_policy(
+    stations: pd.DataFrame, *, max_weight_share_change: float, max_bias_change: float
+) -> pd.DataFrame:
+    """Stations that break the adoption policy first, then by |weight-share change|.
+
+    Adds the boolean column ``outside_policy``: the station's weight share moves by more
+    than ``max_weight_share_change`` or its bias by more than ``max_bias_change`` (the limits
+    of :meth:`DryRunReport.within_policy`). Within the breaking stations the larger excess
+    over its limit comes first.
+    """
+    share = stations["share_change"].abs().to_numpy(dtype=float)
+    bias = np.nan_to_num(stations["bias_change"].abs().to_numpy(dtype=float), nan=0.0)
+    excess = np.maximum(share / max_weight_share_change, bias / max_bias_change)
+    outside = (share > max_weight_share_change) | (bias > max_bias_change)
+    order = np.lexsort((-share, -np.where(outside, excess, 0.0), ~outside))
+    out = stations.iloc[order].reset_index(drop=True)
+    out["outside_policy"] = outside[order]
+    return out
 
 
 def _top_events(

@@ -78,5 +78,6 @@ def write_model_report(
         inputs,
         out_dir,
         since=since,
+        level=cfg.network.confidence_level,
         outlier_weight=cfg.network.outlier_weight,
     )

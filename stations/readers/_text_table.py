@@ -22,6 +22,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pa_csv
 from numpy.typing import NDArray
 
+from stations import strict_json
 from stations.errors import MalformedFileError
 from stations.validation import Reasons, rejected_frame
 
@@ -83,7 +84,7 @@ class StringTable:
 
     def raw(self, idx: NDArray[np.int64]) -> list[str]:
         """JSON text of the rows at positions ``idx`` (a :data:`~stations.validation.RawRows`)."""
-        return [json.dumps(row) for row in self.table.take(pa.array(idx)).to_pylist()]
+        return [strict_json.dumps(row) for row in self.table.take(pa.array(idx)).to_pylist()]
 
 
 def _parse(

@@ -49,7 +49,6 @@ True
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Any, Final
 
@@ -60,6 +59,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
+from stations import strict_json
 from stations.errors import MalformedFileError
 from stations.readers import _sniff
 from stations.readers.base import ReadResult, display_path
@@ -205,7 +205,7 @@ def read_parquet(
 
     def raw(idx: NDArray[np.int64]) -> list[str]:
         rows = table.take(pa.array(idx)).to_pylist()
-        return [json.dumps(row, default=str) for row in rows]
+        return [strict_json.dumps(row) for row in rows]
 
     records, rejected = validate_records(
         frame, source_file=shown, raw=raw, magnitude_range=magnitude_range

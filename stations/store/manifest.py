@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
+from stations import strict_json
 from stations.errors import SchemaError, StoreCorruptError
 from stations.schema import SCHEMA_VERSION
 from stations.store.atomic import write_bytes_atomic
@@ -167,7 +168,7 @@ class Manifest:
             "files": [asdict(f) for f in self.files],
             "checksums": dict(sorted(self.checksums.items())),
         }
-        return json.dumps(doc, sort_keys=True, indent=1).encode("utf-8")
+        return strict_json.dumps(doc, sort_keys=True, indent=1).encode("utf-8")
 
 
 def _parse(doc: Any, where: Path) -> Manifest:

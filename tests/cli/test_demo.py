@@ -25,7 +25,20 @@ _ROW = re.compile(
 
 
 #: Words of the score table's header line.
-HEADER = ["method", "events", "RMSE", "raw", "RMSE", "offset", "68%", "coverage"]
+HEADER = [
+    "method",
+    "events",
+    "RMSE",
+    "raw",
+    "RMSE",
+    "offset",
+    "coverage",
+    "of",
+    "the",
+    "68",
+    "%",
+    "interval",
+]
 
 
 def _scores(lines: list[str]) -> dict[str, tuple[int, float]]:

@@ -260,11 +260,11 @@ def test_event_explains_the_stored_network_magnitude(learned_store: LearnedStore
     origin = pd.Timestamp(row["origin_time"]).tz_convert(None)
     assert lines[0] == f"event {eid}  ML  origin {str(origin)[:23]}"
     assert lines[1] == (
-        f"network magnitude  {row['magnitude']:.2f} ± {row['se']:.3f} (1 SE); "
+        f"network magnitude  {row['magnitude']:.2f}  SE {row['se']:.3f}; "
         f"68 % interval {row['ci_low']:.2f} .. {row['ci_high']:.2f}"
     )
-    assert lines[6] == f"model              {ls.v1}"
-    table = lines[lines.index("") + 2 : -2]
+    assert lines[2] == f"status             preliminary, recorded with model {ls.v1}"
+    table = lines[lines.index("") + 3 : -2]
     assert len(table) == len(doc["contributions"])
     assert lines[-1] == ADVISORY
 

@@ -68,7 +68,7 @@ def test_page_is_self_contained_and_cautious(html: str) -> None:
     assert "@import" not in html
     assert html.count(ADVISORY) >= 2
     assert "ML-20250101T000000Z-test0000" in html
-    assert "reference_set, value +0.000 ± 0.012" in html
+    assert "reference_set, value +0.000 (SE 0.012)" in html
     assert "2025-01-01 00:00 UTC to 2026-01-01 00:00 UTC" in html
 
 
