@@ -36,6 +36,7 @@ from fusion.export import (
     write_quakeml,
 )
 from fusion.export.quakeml import (
+    QUAKEML_MAPPING,
     SE_CONFIDENCE_PERCENT,
     comment_fields,
     event_id_from_resource_id,
@@ -315,7 +316,6 @@ def test_quakeml_is_schema_valid_and_round_trips(tmp_path: Path, chain: Chain) -
         assert (mag.evaluation_mode, mag.evaluation_status) == ("automatic", "preliminary")
         assert mag.creation_info.version == version.version_id
         assert mag.creation_info.creation_time == obspy.UTCDateTime(NOW)
-        assert qe.preferred_magnitude_id is None  # advisory: not the magnitude of record
         (origin,) = qe.origins
         assert origin.time == obspy.UTCDateTime(ev.origin_time.to_pydatetime())
         assert str(mag.origin_id) == str(origin.resource_id) == str(qe.preferred_origin_id)
@@ -337,6 +337,38 @@ def test_quakeml_is_schema_valid_and_round_trips(tmp_path: Path, chain: Chain) -
         if ev.method in ("gls", "robust_gls", "single_station"):
             total = sum(c.weight * sms[str(c.station_magnitude_id)].mag for c in contribs)
             assert total == pytest.approx(mag.mag, abs=1e-9)  # weights are normalised GLS
+
+
+def test_quakeml_preferred_magnitude_is_the_fused_one(tmp_path: Path, chain: Chain) -> None:
+    """obspy's Event.preferred_magnitude() finds the network magnitude of every event."""
+    store, _, _, readings = chain
+    out = tmp_path / "ml.xml"
+    export_magnitudes(store, "ML", out, format="quakeml", readings=readings, now=NOW)
+    cat = obspy.read_events(str(out))
+    assert len(cat) > 0
+    for ev in cat:
+        (mag,) = ev.magnitudes
+        assert ev.preferred_magnitude() is not None
+        assert ev.preferred_magnitude().resource_id == mag.resource_id
+
+
+def test_quakeml_sidecar_names_only_columns_the_magnitude_export_has(
+    tmp_path: Path, chain: Chain
+) -> None:
+    """Every bare column name in the sidecar's mapping is a column of the CSV/Parquet export."""
+    store, _, _, readings = chain
+    out = tmp_path / "ml.xml"
+    export_magnitudes(store, "ML", out, format="quakeml", readings=readings, now=NOW)
+    readme = readme_path(out).read_text(encoding="utf-8")
+    exported = {c.name for c in MAGNITUDE_COLUMNS}
+    named = set()
+    for element, source, _unit in QUAKEML_MAPPING:
+        assert element in readme
+        named |= {w for w in re.split(r"[ ,;()]+", source) if re.fullmatch(r"[a-z]+_[a-z_]+", w)}
+        if re.fullmatch(r"[a-z_]+", source):
+            named.add(source)
+    named -= {"station_correction", "magnitude_as_read"}  # keys of the comment, see its notes
+    assert named and named <= exported, sorted(named - exported)
 
 
 def test_quakeml_leaves_out_nondetections_and_events_without_magnitude(
