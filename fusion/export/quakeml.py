@@ -144,8 +144,16 @@ QUAKEML_MAPPING: Final = (
     ("origin/latitude, longitude", "event location of the input bulletin", "deg"),
     ("origin/depth", "event depth of the input bulletin, km * 1000", "m"),
     ("magnitude/mag/value", "mag", "magnitude units"),
-    ("magnitude/mag/uncertainty", "mag_uncertainty (1 sigma) or interval half-width", "magnitude units"),
-    ("magnitude/mag/confidenceLevel", "68.27 for mag_uncertainty; 100 * confidence_level", "percent"),
+    (
+        "magnitude/mag/uncertainty",
+        "mag_uncertainty (1 sigma) or interval half-width",
+        "magnitude units",
+    ),
+    (
+        "magnitude/mag/confidenceLevel",
+        "68.27 for mag_uncertainty; 100 * confidence_level",
+        "percent",
+    ),
     ("magnitude/type", "magnitude_type", "-"),
     ("magnitude/stationCount", "station_count", "count"),
     ("magnitude/methodID", "method", "-"),
@@ -154,11 +162,23 @@ QUAKEML_MAPPING: Final = (
     ("magnitude/creationInfo/version", "model_version", "-"),
     ("magnitude/creationInfo/creationTime", "fused_at", "UTC"),
     ("magnitude/comment", "flags=...; run_id=...", "-"),
-    ("stationMagnitude/mag/value", "station magnitude as read + station correction", "magnitude units"),
+    (
+        "stationMagnitude/mag/value",
+        "station magnitude as read + station correction",
+        "magnitude units",
+    ),
     ("stationMagnitude/waveformID", "station code NET.STA.LOC (+ channel)", "-"),
-    ("stationMagnitude/comment", "station_correction=...; magnitude_as_read=...", "magnitude units"),
+    (
+        "stationMagnitude/comment",
+        "station_correction=...; magnitude_as_read=...",
+        "magnitude units",
+    ),
     ("stationMagnitudeContribution/weight", "normalised weight of the station magnitude", "1"),
-    ("stationMagnitudeContribution/residual", "corrected station magnitude - mag", "magnitude units"),
+    (
+        "stationMagnitudeContribution/residual",
+        "corrected station magnitude - mag",
+        "magnitude units",
+    ),
 )
 
 _EVENT_COLUMNS: Final = (

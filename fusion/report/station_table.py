@@ -562,8 +562,10 @@ def write_station_table(
         )
         for f in STATION_REPORT_SCHEMA
     ]
-    facts = [(k.removeprefix("magfuse.").replace("_", " ").capitalize(), v or "-")
-             for k, v in (metadata or {}).items()]
+    facts = [
+        (k.removeprefix("magfuse.").replace("_", " ").capitalize(), v or "-")
+        for k, v in (metadata or {}).items()
+    ]
     for path, fmt in ((csv_path, ExportFormat.csv), (parquet_path, ExportFormat.parquet)):
         text = readme_text(
             title="station reliability table",
