@@ -38,19 +38,26 @@ AsOfOption = Annotated[
     str | None,
     typer.Option(
         "--as-of",
+        metavar="TIME",
         help="End of the learning window, ISO 8601 UTC (default: latest origin time stored).",
     ),
 ]
 HalfLifeOption = Annotated[
     float | None,
-    typer.Option("--half-life", help="Half-life of the event weights, days ([learn])."),
+    typer.Option(
+        "--half-life", metavar="DAYS", help="Half-life of the event weights, days ([learn])."
+    ),
 ]
 WindowOption = Annotated[
     float | None, typer.Option("--window", help="Hard window, days ([learn]).")
 ]
 CsvDirOption = Annotated[
     Path | None,
-    typer.Option("--csv", help="Also write the station, pair and epoch tables as CSV here."),
+    typer.Option(
+        "--csv",
+        metavar="FOLDER",
+        help="Also write the station, pair and epoch tables as CSV files into this folder.",
+    ),
 ]
 
 
@@ -148,6 +155,7 @@ def models_command(
     versions = reg.versions(type)
     actives = {v.magnitude_type: reg.active_id(v.magnitude_type) for v in versions}
     rows = [_version_row(v, actives[v.magnitude_type]) for v in versions]
+    print_advisory()  # on stderr, so the JSON below stays machine-readable
     if json_out:
         typer.echo(json.dumps(rows, indent=2, default=str))
         return
@@ -171,7 +179,9 @@ def _seconds(iso: Any) -> str:
     return str(iso or "-").replace("T", " ")[:19]
 
 
-VersionArgument = Annotated[str, typer.Argument(help="Model version id (see 'magfuse models').")]
+VersionArgument = Annotated[
+    str, typer.Argument(help="Model version id (see 'magfuse models').", metavar="VERSION")
+]
 
 
 def adopt_command(

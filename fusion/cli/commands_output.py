@@ -11,7 +11,6 @@ import typer
 from fusion.cli.common import (
     ConfigOption,
     SinceOption,
-    StationsOption,
     StoreOption,
     TypeOption,
     UntilOption,
@@ -76,11 +75,16 @@ def fuse_command(
 
 def finalize_command(
     event_ids: Annotated[
-        list[str] | None, typer.Argument(help="Events to mark final.", show_default=False)
+        list[str] | None,
+        typer.Argument(help="Events to mark final.", show_default=False, metavar="EVENT_ID"),
     ] = None,
     before: Annotated[
         str | None,
-        typer.Option("--before", help="Mark final every event with origin before this time."),
+        typer.Option(
+            "--before",
+            metavar="TIME",
+            help="Mark final every event with origin before this time (ISO 8601 UTC).",
+        ),
     ] = None,
     type: TypeOption = None,
     store: StoreOption = None,
@@ -99,6 +103,7 @@ def finalize_command(
         mtype, before=parse_time(before, "--before"), event_ids=event_ids or None
     )
     typer.echo(f"{mtype}: {n:,} network magnitudes marked final")
+    print_advisory()
 
 
 class ExportWhat(StrEnum):
@@ -119,10 +124,23 @@ class ExportFormatChoice(StrEnum):
 
 
 def export_command(
-    what: Annotated[ExportWhat, typer.Argument(help="magnitudes, stations, pairs or epochs.")],
-    out: Annotated[Path, typer.Option("--out", help="File to write.")],
+    what: Annotated[
+        ExportWhat,
+        typer.Argument(
+            metavar="WHAT",
+            help=(
+                "magnitudes (network magnitudes from 'magfuse fuse'), or a model version's "
+                "stations, pairs or epochs table."
+            ),
+        ),
+    ],
+    out: Annotated[Path, typer.Option("--out", metavar="FILE", help="File to write.")],
     format: Annotated[
-        ExportFormatChoice, typer.Option("--format", help="csv, parquet or quakeml.")
+        ExportFormatChoice,
+        typer.Option(
+            "--format",
+            help="csv, parquet or quakeml (QuakeML 1.2; magnitudes only).",
+        ),
     ] = ExportFormatChoice.csv,
     type: TypeOption = None,
     since: SinceOption = None,
@@ -133,7 +151,7 @@ def export_command(
 ) -> None:
     """Export fused magnitudes (from 'magfuse fuse') or a model version's tables.
 
-    Every export writes a README sidecar (<file>.README.txt) with the advisory caution and
+    Every export writes a README sidecar (FILE.README.txt) with the advisory caution and
     every column with its unit.
     """
     from fusion.export import export_magnitudes, export_model_table
@@ -170,12 +188,28 @@ def export_command(
     print_advisory()
 
 
+ReportStationsOption = Annotated[
+    Path | None,
+    typer.Option(
+        "--stations",
+        help=(
+            "StationXML or station CSV with station positions: draws the stations on the "
+            "report's map of correlated pairs (default: [compute] stations; without it, "
+            "no map)."
+        ),
+        dir_okay=False,
+    ),
+]
+
+
 def report_command(
-    out: Annotated[Path, typer.Option("--out", help="Folder for the report files.")],
+    out: Annotated[
+        Path, typer.Option("--out", metavar="FOLDER", help="Folder for the report files.")
+    ],
     type: TypeOption = None,
     since: SinceOption = None,
     version: VersionOption = None,
-    stations: StationsOption = None,
+    stations: ReportStationsOption = None,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:

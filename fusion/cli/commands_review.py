@@ -30,13 +30,16 @@ def register(app: typer.Typer) -> None:
 
 
 HtmlOption = Annotated[
-    Path | None, typer.Option("--html", help="Also write a self-contained HTML page here.")
+    Path | None,
+    typer.Option("--html", metavar="FILE", help="Also write a self-contained HTML page here."),
 ]
-PngOption = Annotated[Path | None, typer.Option("--png", help="Also write the picture as PNG.")]
+PngOption = Annotated[
+    Path | None, typer.Option("--png", metavar="FILE", help="Also write the picture as PNG.")
+]
 
 
 def event_command(
-    event_id: Annotated[str, typer.Argument(help="Event id as stored.")],
+    event_id: Annotated[str, typer.Argument(help="Event id as stored.", metavar="EVENT_ID")],
     type: TypeOption = None,
     version: VersionOption = None,
     json_out: JsonOption = False,

@@ -37,12 +37,20 @@ FormatOption = Annotated[
     str | None,
     typer.Option(
         "--format",
-        help="Reader format of every PATH (default: recognise each file by its content).",
+        metavar="FORMAT",
+        help=(
+            "Reader format of every FILE: parquet, quakeml, ims10, mchedr, yellowstone or csv "
+            "(default: recognise each file by its content)."
+        ),
     ),
 ]
 PathsArgument = Annotated[
     list[Path],
-    typer.Argument(help="Files of station magnitudes; each becomes one batch.", show_default=False),
+    typer.Argument(
+        help="Files of station magnitudes; each becomes one batch.",
+        show_default=False,
+        metavar="FILE",
+    ),
 ]
 
 
@@ -226,7 +234,7 @@ def store_command(
     """Summarise the store: rows, detections, time range, events, stations, revisions.
 
     Rows are counted per magnitude type, in the current view (latest revision of each
-    reading) and over every revision; also quarantined rows and batches. ``--json`` prints
+    reading) and over every revision; also quarantined rows and batches. --json prints
     the same figures for machines.
     """
     from stations.store import StationMagnitudeStore

@@ -25,22 +25,38 @@ ConfigOption = Annotated[
 ]
 StoreOption = Annotated[
     Path | None,
-    typer.Option("--store", help="Store directory (default: [store] path of the configuration)."),
+    typer.Option(
+        "--store",
+        metavar="FOLDER",
+        help="Store folder (default: [store] path of the configuration).",
+    ),
 ]
 JsonOption = Annotated[bool, typer.Option("--json", help="Print JSON for machines.")]
 TypeOption = Annotated[
     str | None,
-    typer.Option("--type", help="Magnitude type (default: [learn] magnitude_type)."),
+    typer.Option(
+        "--type",
+        metavar="TYPE",
+        help=(
+            "Magnitude type: ML, mb, mB_BB, Ms_20, Ms_BB, mb_Lg, Mw (IASPEI standard names) "
+            "or MLv, mB, Ms, Md, Mc, Mwp, Me (accepted as reported); default: [learn] "
+            "magnitude_type."
+        ),
+    ),
 ]
 SinceOption = Annotated[
-    str | None, typer.Option("--since", help="Start of the window, ISO 8601 UTC (inclusive).")
+    str | None,
+    typer.Option("--since", metavar="TIME", help="Start of the window, ISO 8601 UTC (inclusive)."),
 ]
 UntilOption = Annotated[
-    str | None, typer.Option("--until", help="End of the window, ISO 8601 UTC (exclusive).")
+    str | None,
+    typer.Option("--until", metavar="TIME", help="End of the window, ISO 8601 UTC (exclusive)."),
 ]
 VersionOption = Annotated[
     str | None,
-    typer.Option("--version", help="Model version to use (default: the active one)."),
+    typer.Option(
+        "--version", metavar="VERSION", help="Model version to use (default: the active one)."
+    ),
 ]
 ComputeFlag = Annotated[
     bool,
@@ -62,6 +78,7 @@ DefaultNetworkOption = Annotated[
     str | None,
     typer.Option(
         "--default-network",
+        metavar="CODE",
         help="Network code for stations named without one (IMS1.0, NEIC mchedr).",
     ),
 ]

@@ -1,0 +1,109 @@
+"""What every command prints around its result: the advisory, help texts a reader can use, and
+options refused at the command line with one line instead of a late, misleading answer."""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from fusion.advisory import ADVISORY
+from fusion.cli.app import app
+from tests.cli.conftest import LearnedStore, copy_store, demo_slice, invoke
+
+#: Every command of ``magfuse --help`` (the demo is checked in tests/cli/test_demo.py: it
+#: takes a minute).
+COMMANDS = tuple(c.name for c in app.registered_commands)
+
+
+def _args(name: str, ls: LearnedStore, root: Path, tmp: Path) -> list[object]:
+    """Arguments that make ``magfuse NAME`` succeed on a copy of the learned store."""
+    event = "qv2025-00010"
+    common: list[object] = ["--store", root, "--config", ls.config]
+    by_name: dict[str, list[object]] = {
+        "ingest": [demo_slice(tmp / "apr.csv", "2025-04-01", "2025-04-08")],
+        "store": [],
+        "compute": ["--type", "ML"],
+        "learn": [],
+        "models": [],
+        "adopt": [ls.v2],
+        "rollback": [],
+        "diff": [ls.v2],
+        "fuse": [],
+        "event": [event],
+        "finalize": ["--before", "2025-01-15"],
+        "export": ["magnitudes", "--out", tmp / "m.csv"],
+        "report": ["--out", tmp / "report"],
+        "nightly": ["--inbox", _inbox(tmp)],
+    }
+    return [*by_name[name], *common]
+
+
+def _inbox(tmp: Path) -> Path:
+    inbox = tmp / "inbox"
+    demo_slice(inbox / "apr.csv", "2025-04-01", "2025-04-08")
+    return inbox
+
+
+@pytest.mark.slow
+def test_every_command_prints_the_advisory(learned_store: LearnedStore, tmp_path: Path) -> None:
+    """README: 'Every command, export and report says so' (models and finalize did not)."""
+    ls = learned_store
+    root = copy_store(ls.root, tmp_path / "the-store")
+    invoke("adopt", ls.v1, "--store", root)  # rollback needs an earlier active version
+    missing = []
+    for name in COMMANDS:
+        if name == "demo":
+            continue
+        work = tmp_path / f"work-{name}"
+        work.mkdir()
+        if name == "rollback":
+            invoke("adopt", ls.v2, "--store", root, "--config", ls.config)
+        res = invoke(name, *_args(name, ls, root, work))
+        assert res.exit_code in (0, 3), (name, res.stdout, res.stderr)
+        if ADVISORY not in res.stdout + res.stderr:
+            missing.append(name)
+    assert missing == []
+    res = invoke("models", "--json", "--store", root)
+    assert res.stderr == ADVISORY + "\n"  # on stderr: the JSON stays machine-readable
+
+
+# -- help texts -----------------------------------------------------------------------------------
+
+#: What a reader of --help should never see: Python type names, braces, reST/Markdown markup.
+FORBIDDEN_IN_HELP = re.compile(r"<[^>]*>|[{}]|``|\*\*|list\[|:class:|:func:|:mod:|\bstr\b|\bPath\b")
+
+
+def _help(*command: str) -> str:
+    res = invoke(*command, "--help")
+    assert res.exit_code == 0, res.stderr
+    return res.stdout
+
+
+@pytest.mark.parametrize("command", [(), *((name,) for name in COMMANDS)])
+def test_help_shows_no_type_names_or_markup(command: tuple[str, ...]) -> None:
+    text = _help(*command)
+    assert FORBIDDEN_IN_HELP.findall(text) == [], text
+
+
+def test_format_and_type_options_list_their_values() -> None:
+    from stations.readers import supported_formats
+    from stations.schema import MagnitudeType
+
+    ingest = " ".join(_help("ingest").split())
+    for fmt in supported_formats():
+        assert fmt in ingest.split("--format FORMAT", 1)[1].split("--compute", 1)[0], fmt
+    export = " ".join(_help("export").split())
+    assert "--format csv|parquet|quakeml" in export
+    for name in ("learn", "fuse", "export", "report"):
+        text = " ".join(_help(name).split())
+        options = text.split("--type TYPE", 1)[1]
+        for m in MagnitudeType:
+            assert f" {m.value}," in options or f" {m.value} (" in options, (name, m.value)
+
+
+def test_report_stations_option_says_it_draws_the_map() -> None:
+    text = " ".join(_help("report").split())
+    stations = text.split("--stations FILE", 1)[1].split("--store", 1)[0]
+    assert "map" in stations and "distances" not in stations
