@@ -13,6 +13,7 @@ from fusion.cli.common import (
     JsonOption,
     StoreOption,
     TypeOption,
+    check_override,
     load,
     open_registry,
     open_store,
@@ -49,7 +50,8 @@ HalfLifeOption = Annotated[
     ),
 ]
 WindowOption = Annotated[
-    float | None, typer.Option("--window", help="Hard window, days ([learn]).")
+    float | None,
+    typer.Option("--window", metavar="DAYS", help="Hard window, days, > 0 ([learn])."),
 ]
 CsvDirOption = Annotated[
     Path | None,
@@ -106,6 +108,8 @@ def learn_command(
     from fusion.workflows.learning import learn_candidate
 
     cfg = load(config)
+    check_override(cfg, "learn", "half_life_days", half_life, "--half-life")
+    check_override(cfg, "learn", "window_days", window, "--window")
     st = open_store(cfg, store)
     reg = open_registry(st)
     outcome = learn_candidate(

@@ -14,6 +14,7 @@ from fusion.cli.common import (
     StoreOption,
     TypeOption,
     VersionOption,
+    check_override,
     load,
     open_registry,
     open_store,
@@ -71,10 +72,20 @@ CandidateArgument = Annotated[
     typer.Argument(help="Candidate version (default: the newest version that is not active)."),
 ]
 DaysOption = Annotated[
-    float | None, typer.Option("--days", help="Recent events compared, days ([nightly]).")
+    float | None,
+    typer.Option(
+        "--days",
+        metavar="DAYS",
+        help="Recent events compared, days, > 0 ([nightly] dry_run_days).",
+    ),
 ]
 TopOption = Annotated[
-    int | None, typer.Option("--top", help="Number of most-moved events listed ([nightly]).")
+    int | None,
+    typer.Option(
+        "--top",
+        metavar="N",
+        help="Number of most-moved events listed, >= 1 ([nightly] dry_run_top).",
+    ),
 ]
 
 
@@ -94,6 +105,8 @@ def diff_command(
     from fusion.workflows.dry_run import dry_run
 
     cfg = load(config)
+    check_override(cfg, "nightly", "dry_run_days", days, "--days")
+    check_override(cfg, "nightly", "dry_run_top", top, "--top")
     st = open_store(cfg, store)
     report = dry_run(
         st, open_registry(st), cfg, magnitude_type=type, candidate=candidate, days=days, top=top

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
@@ -89,6 +89,41 @@ def load(config: Path | None) -> MagfuseConfig:
     from fusion.settings import load_config
 
     return load_config(config)
+
+
+def check_override(cfg: MagfuseConfig, section: str, field: str, value: Any, option: str) -> Any:
+    """A command-line value that overrides ``[section] field``, checked by the same rule.
+
+    The settings model (:mod:`fusion.settings`) holds each setting's range; an option that
+    overrides it must meet that range too, or ``--top 0`` would list nothing and
+    ``--window -1`` would read no data and blame the store.
+
+    Returns
+    -------
+    The value (``None`` passes through: the configuration's value applies).
+
+    Raises
+    ------
+    ConfigError
+        One line naming the option, the value and the rule.
+    """
+    if value is None:
+        return None
+    from pydantic import ValidationError
+
+    from stations.errors import ConfigError
+
+    current = getattr(cfg, section)
+    try:
+        type(current).model_validate({**current.model_dump(), field: value})
+    except ValidationError as exc:
+        rule = exc.errors()[0]["msg"]
+        rule = rule[0].lower() + rule[1:]
+        raise ConfigError(
+            f"{option} {value!r}: {rule} (the rule of [{section}] {field}); give a value in "
+            "range or leave the option out to use the configuration's"
+        ) from None
+    return value
 
 
 def compute_setup(

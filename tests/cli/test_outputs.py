@@ -107,3 +107,28 @@ def test_report_stations_option_says_it_draws_the_map() -> None:
     text = " ".join(_help("report").split())
     stations = text.split("--stations FILE", 1)[1].split("--store", 1)[0]
     assert "map" in stations and "distances" not in stations
+
+
+# -- options checked by the settings' rules -------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("command", "option", "value", "rule"),
+    [
+        ("diff", "--top", "0", "greater than or equal to 1"),
+        ("diff", "--top", "-3", "greater than or equal to 1"),
+        ("diff", "--days", "0", "greater than 0"),
+        ("learn", "--window", "-1", "greater than 0"),
+        ("learn", "--half-life", "0", "greater than 0"),
+    ],
+)
+def test_out_of_range_option_is_one_line_naming_it(
+    learned_store: LearnedStore, command: str, option: str, value: str, rule: str
+) -> None:
+    """The same range as the configuration key the option overrides (fusion.settings)."""
+    ls = learned_store
+    res = invoke(command, option, value, "--store", ls.root, "--config", ls.config)
+    assert res.exit_code == 1, res.stdout
+    assert res.stdout == ""
+    (line,) = res.stderr.splitlines()
+    assert line.startswith(f"Error: {option} ") and rule in line, line
