@@ -20,6 +20,7 @@ from fusion.cli.common import (
     parse_time,
     print_advisory,
 )
+from fusion.wording import count, number
 
 if TYPE_CHECKING:
     from fusion.versions.model_registry import ModelVersion
@@ -71,12 +72,16 @@ def _summary_lines(v: ModelVersion) -> list[str]:
         f"candidate  {v.version_id}  (not adopted; adopt with 'magfuse adopt {v.version_id}')",
         f"window     {m.get('window_start') or '-'} .. {m.get('window_end')}  "
         f"half-life {m.get('half_life_days'):g} d",
-        f"data       {m.get('n_events'):,} events, {m.get('n_readings'):,} station magnitudes, "
-        f"{m.get('n_nondetections'):,} non-detections",
-        f"stations   {m.get('n_stations')} ({m.get('n_units')} station epochs); "
-        f"{m.get('n_prior_dominated')} prior-dominated, {m.get('n_uncalibrated')} uncalibrated",
-        f"pairs      {m.get('n_pairs_flagged')} correlated of {m.get('n_pairs_tested')} tested; "
-        f"{m.get('n_epoch_splits')} bias steps split into epochs",
+        f"data       {count(m.get('n_events', 0), 'event')}, "
+        f"{count(m.get('n_readings', 0), 'station magnitude')}, "
+        f"{count(m.get('n_nondetections', 0), 'non-detection')}",
+        f"stations   {number(m.get('n_stations', 0))} "
+        f"({count(m.get('n_units', 0), 'station epoch')}); "
+        f"{number(m.get('n_prior_dominated', 0))} prior-dominated, "
+        f"{number(m.get('n_uncalibrated', 0))} uncalibrated",
+        f"pairs      {number(m.get('n_pairs_flagged', 0))} correlated of "
+        f"{number(m.get('n_pairs_tested', 0))} tested; "
+        f"{count(m.get('n_epoch_splits', 0), 'bias step')} split into epochs",
         f"anchor     {anchor.get('kind')}: level {anchor.get('value', float('nan')):+.3f}, "
         f"calibration uncertainty {anchor.get('se', float('nan')):.3f}",
         f"fit        {m.get('n_iter')} iterations, "
