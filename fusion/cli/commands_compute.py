@@ -58,10 +58,13 @@ def compute_command(
         end=end,
         on_wait=lambda msg: typer.echo(msg, err=True),
     )
+    from fusion.wording import number
+
     r = outcome.report
     typer.echo(
-        f"{mtype}: {outcome.computed} recomputed with {options.ml_correction.name} / "
-        f"{options.q_table.name}; {r.revised} changed (new revision), {r.duplicate} unchanged, "
-        f"{r.quarantined} quarantined; batch {r.batch_id}"
+        f"{mtype}: {number(outcome.computed)} recomputed with {options.ml_correction.name} / "
+        f"{options.q_table.name}; {number(r.revised)} changed (new revision), "
+        f"{number(r.duplicate)} unchanged, {number(r.quarantined)} quarantined; "
+        f"batch {r.batch_id}"
     )
     print_advisory()

@@ -72,10 +72,13 @@ def _report_line(path: Path, outcome: IngestOutcome) -> str:
     report = outcome.report
     if report.same_content_as is not None:
         return f"{path}: same content as batch {report.same_content_as}; nothing added"
-    computed = f", {outcome.computed} magnitudes computed" if outcome.computed else ""
+    from fusion.wording import count, number
+
+    computed = f", {count(outcome.computed, 'magnitude')} computed" if outcome.computed else ""
     return (
-        f"{path}: {report.accepted} accepted ({report.revised} revised), "
-        f"{report.duplicate} duplicate, {report.quarantined} quarantined{computed}; "
+        f"{path}: {number(report.accepted)} accepted ({number(report.revised)} revised), "
+        f"{number(report.duplicate)} duplicate, {number(report.quarantined)} quarantined"
+        f"{computed}; "
         f"batch {report.batch_id}"
     )
 
