@@ -1,7 +1,7 @@
 """Fused network magnitudes as QuakeML 1.2, through ObsPy's event model (``obspy.core.event``).
 
 One ``Event`` per event with a finite fused magnitude; events without one (flag
-``no-detection``) are left out and counted. Field mapping (QuakeML BED 1.2 names; magfuse
+``no-usable-detection``) are left out and counted. Field mapping (QuakeML BED 1.2 names; magfuse
 columns of :class:`~fusion.versions.fused_store.FusedStore` frames):
 
 =============================================== =========================== ==================
@@ -595,6 +595,13 @@ def build_catalog(
     return catalog, summary
 
 
+def _flag_notes() -> list[str]:
+    """Methods and flags with their meanings (the magnitude export's sidecar paragraphs)."""
+    from fusion.export.magnitudes import flag_notes  # imports this module: call time only
+
+    return flag_notes(rows=True)
+
+
 def write_quakeml(
     events: pd.DataFrame,
     contributions: pd.DataFrame,
@@ -658,6 +665,7 @@ def write_quakeml(
             "export's sidecar).",
             "The one magnitude of each event is its preferredMagnitudeID within this file; "
             "the magnitude of record stays the publishing authority's.",
+            *_flag_notes(),
             *notes,
         ],
     )

@@ -88,7 +88,7 @@ class StationFlag(StrEnum):
     residual_offset = "residual-offset"  #: |t| > 3 for the mean residual in the window
     many_outliers = "many-outliers"  #: window outlier rate above ``outlier_rate_alert``
     drift_alarm = "drift-alarm"  #: a CUSUM bias-step alarm in the unit's epoch
-    correlated = "correlated"  #: a flagged correlated partner
+    correlated = "correlated-pair"  #: a flagged correlated partner
     uncalibrated = "uncalibrated"  #: no anchor in the unit's component
     prior_dominated = "prior-dominated"  #: the prior outweighs the data (few readings)
 

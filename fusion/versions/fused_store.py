@@ -549,6 +549,17 @@ def _write_parquet(
 # ---------------------------------------------------------------------------------------------
 
 
+def _upgrade_names(table: pa.Table) -> pa.Table:
+    """Method and flag names written by earlier versions, read as today's (fusion.flags)."""
+    from fusion.flags import upgrade_flags, upgrade_methods
+
+    for name, upgrade in (("method", upgrade_methods), ("flags", upgrade_flags)):
+        if name in table.column_names:
+            i = table.column_names.index(name)
+            table = table.set_column(i, table.schema.field(i), upgrade(table.column(i)))
+    return table
+
+
 class FusedStore:
     """Fused network magnitudes of one store (layout and rules: module docstring).
 
@@ -689,7 +700,7 @@ class FusedStore:
                 return pa.schema([schema.field(c) for c in cols]).empty_table()
             keep = pc.is_in(table.column("event_id"), value_set=pa.array(event_ids, pa.string()))
             table = table.filter(keep)
-        return table.select(cols)  # types checked above; metadata stays that of the file
+        return _upgrade_names(table.select(cols))  # types checked above; file's metadata
 
     def _events_table(
         self,

@@ -142,27 +142,27 @@ def render_event(ex: EventExplanation) -> str:
         + (
             f", {int(ev.get('n_nondetections_used', 0))} non-detections used, "
             f"shift {_f(ev.get('censoring_shift'), '+.3f')}"
-            if ev.get("n_nondetections_used") or est.method == "censored_ml"
+            if ev.get("n_nondetections_used") or est.method == "censored-likelihood"
             else ""
         ),
         f"flags              {', '.join(est.flags) or '-'}" + _detection_bias_note(ev),
         f"model              {ex.model_version}",
         "",
-        f"{'station':<16} {'mag':>5} {'corr':>6} {'corrected':>9} {'weight':>7} "
+        f"{'station':<16} {'mag':>5} {'correction':>10} {'corrected':>9} {'weight':>7} "
         f"{'residual':>8} {'influence':>9} {'z':>6}  flags",
     ]
     rows = sorted(est.contributions, key=lambda c: (not c.detected, -abs(c.weight)))
     for c in rows:
         if c.detected:
             lines.append(
-                f"{c.station_id:<16} {_f(c.magnitude):>5} {_f(c.correction, '+.2f'):>6} "
+                f"{c.station_id:<16} {_f(c.magnitude):>5} {_f(c.correction, '+.2f'):>10} "
                 f"{_f(c.corrected_magnitude):>9} {_f(c.weight, '.3f'):>7} "
                 f"{_f(c.residual, '+.3f'):>8} {_f(c.influence, '+.3f'):>9} {_f(c.z, '+.2f'):>6}  "
                 f"{', '.join(c.flags)}"
             )
         else:
             lines.append(
-                f"{c.station_id:<16} {'-':>5} {_f(c.correction, '+.2f'):>6} "
+                f"{c.station_id:<16} {'-':>5} {_f(c.correction, '+.2f'):>10} "
                 f"{'< ' + _f(c.threshold):>9} {_f(c.weight, '.3f'):>7} {'':>8} {'':>9} "
                 f"{'':>6}  not detected (noise threshold {_f(c.threshold)})"
             )

@@ -132,3 +132,41 @@ def test_out_of_range_option_is_one_line_naming_it(
     assert res.stdout == ""
     (line,) = res.stderr.splitlines()
     assert line.startswith(f"Error: {option} ") and rule in line, line
+
+
+# -- names a reader can read ----------------------------------------------------------------------
+
+
+def test_event_table_names_the_correction_column_in_full(learned_store: LearnedStore) -> None:
+    """'corr' read as correction or correlation; the header says 'correction'."""
+    ls = learned_store
+    res = invoke("event", "qv2025-00010", "--store", ls.root, "--config", ls.config)
+    assert res.exit_code == 0, res.stderr
+    (header,) = [line for line in res.stdout.splitlines() if line.startswith("station ")]
+    assert header.split()[:4] == ["station", "mag", "correction", "corrected"]
+
+
+def test_report_pair_table_uses_words_not_design_symbols() -> None:
+    import numpy as np
+    import pandas as pd
+
+    from fusion.report.writer import _pair_rows
+
+    pairs = pd.DataFrame(
+        {
+            "station_k": ["ZZ.A."],
+            "station_l": ["ZZ.B."],
+            "n_shared": [100],
+            "rho_hat": [0.5],
+            "rho_ci_low": [0.3],
+            "rho_ci_high": [0.7],
+            "statistic": [5.0],
+            "p_value": [1e-6],
+            "q_value": [1e-5],
+            "flagged": [True],
+        }
+    )
+    html = _pair_rows(pairs, np.arange(1))
+    for symbol in ("station k", "station l", "ρ̂", ">T<", "rho_hat", "c_hat", "T_self"):
+        assert symbol not in html, symbol
+    assert "error correlation" in html

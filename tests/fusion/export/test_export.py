@@ -348,6 +348,20 @@ def test_epochs_export_names_the_unit_after_the_step(tmp_path: Path) -> None:
     assert "station" not in table.columns
 
 
+def test_magnitude_sidecar_explains_every_method_and_flag(tmp_path: Path, chain: Chain) -> None:
+    from fusion.flags import EVENT_FLAGS, METHODS, ROW_FLAGS
+
+    store, _, _, readings = chain
+    csv, xml = tmp_path / "m.csv", tmp_path / "m.xml"
+    export_magnitudes(store, "ML", csv, now=NOW)
+    export_magnitudes(store, "ML", xml, format="quakeml", readings=readings, now=NOW)
+    for path, tables in ((csv, (METHODS, EVENT_FLAGS)), (xml, (METHODS, EVENT_FLAGS, ROW_FLAGS))):
+        readme = readme_path(path).read_text(encoding="utf-8")
+        for table in tables:
+            for name, meaning in table.items():
+                assert re.search(rf"^  {re.escape(name)} +{re.escape(meaning)}$", readme, re.M)
+
+
 # -- QuakeML ------------------------------------------------------------------------------------
 
 
@@ -398,7 +412,7 @@ def test_quakeml_is_schema_valid_and_round_trips(tmp_path: Path, chain: Chain) -
             assert str(sm.origin_id) == str(origin.resource_id)
             # QuakeML's relation, from the file alone: residual = station mag - network mag
             assert c.residual == pytest.approx(sm.mag - mag.mag, abs=1e-12)
-        if ev.method in ("gls", "robust_gls", "single_station"):
+        if ev.method in ("gls", "robust-gls", "single-station"):
             total = sum(c.weight * sms[str(c.station_magnitude_id)].mag for c in contribs)
             assert total == pytest.approx(mag.mag, abs=1e-9)  # weights are normalised GLS
 
@@ -442,7 +456,7 @@ def test_quakeml_leaves_out_nondetections_and_events_without_magnitude(
     rows = censored.store.current_contributions("ML", cur)
     assert (~rows["detected"]).sum() > 100
     gone = cur["event_id"].iloc[0]
-    cur.loc[cur.index[0], "magnitude"] = np.nan  # as for a 'no-detection' event
+    cur.loc[cur.index[0], "magnitude"] = np.nan  # as for a 'no-usable-detection' event
     report = write_quakeml(cur, rows, tmp_path / "c.xml", readings=censored.readings, now=NOW)
     assert (report.rows, report.skipped) == (len(cur) - 1, 1)
     assert _xsd_errors(tmp_path / "c.xml") == []

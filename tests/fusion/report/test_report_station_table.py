@@ -127,7 +127,7 @@ def test_planted_problems_are_flagged(table) -> None:  # type: ignore[no-untyped
     partners = table.set_index("station_id")["partners"]
     for k, l in (("ZZ.S000.", "ZZ.S001."), ("ZZ.S002.", "ZZ.S003."), ("ZZ.S004.", "ZZ.S005.")):
         assert partners[k].startswith(l) and partners[l].startswith(k)
-        assert "correlated" in _flags(table, k)
+        assert "correlated-pair" in _flags(table, k)
 
 
 def test_clean_stations_are_rarely_flagged(table) -> None:  # type: ignore[no-untyped-def]
