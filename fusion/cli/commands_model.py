@@ -59,7 +59,10 @@ CsvDirOption = Annotated[
     typer.Option(
         "--csv",
         metavar="FOLDER",
-        help="Also write the station, pair and epoch tables as CSV files into this folder.",
+        help=(
+            "Also write the station, pair and epoch tables into this folder as CSV files, "
+            "each with a README, as 'magfuse export' writes them."
+        ),
     ),
 ]
 
@@ -110,6 +113,7 @@ def learn_command(
     The candidate is not adopted: compare it with 'magfuse diff' and switch with
     'magfuse adopt'. Its station, pair and epoch tables are stored with it (Parquet).
     """
+    from fusion.export import export_model_table
     from fusion.workflows.learning import learn_candidate
 
     cfg = load(config)
@@ -130,7 +134,8 @@ def learn_command(
     if csv is not None:
         csv.mkdir(parents=True, exist_ok=True)
         for name in ("stations", "pairs", "epochs"):
-            reg.load_table(v, name).to_csv(csv / f"{v.version_id}-{name}.csv", index=False)
+            # the same files as 'magfuse export NAME': plain column names and a README sidecar
+            export_model_table(reg, v, name, csv / f"{v.version_id}-{name}.csv", format="csv")
     if json_out:
         typer.echo(json.dumps(dict(v.meta), indent=2, default=str))
     else:

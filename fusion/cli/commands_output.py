@@ -21,6 +21,7 @@ from fusion.cli.common import (
     parse_time,
     print_advisory,
 )
+from fusion.wording import count, number
 
 __all__ = ["register"]
 
@@ -66,8 +67,8 @@ def fuse_command(
     ev = res.fused.events
     moved = (ev["magnitude"] - ev["plain_mean"]).abs()
     typer.echo(
-        f"{mtype}: {report.events_written:,} events fused with {res.version.version_id}; "
-        f"{report.skipped_final:,} left alone (final); "
+        f"{mtype}: {count(report.events_written, 'event')} fused with "
+        f"{res.version.version_id}; {number(report.skipped_final)} left alone (final); "
         f"median |fused - plain mean| {moved.median():.3f}, largest {moved.max():.3f}"
     )
     print_advisory()
@@ -102,7 +103,7 @@ def finalize_command(
     n = FusedStore(st.root, lock=st.write_lock).finalize(
         mtype, before=parse_time(before, "--before"), event_ids=event_ids or None
     )
-    typer.echo(f"{mtype}: {n:,} network magnitudes marked final")
+    typer.echo(f"{mtype}: {count(n, 'network magnitude')} marked final")
     print_advisory()
 
 
@@ -182,7 +183,7 @@ def export_command(
         reg = open_registry(st)
         v = resolve_version(reg, mtype, version)
         report = export_model_table(reg, v, what.value, out, format=format.value)
-    typer.echo(f"wrote {report.rows:,} rows to {out} (and {Path(report.readme).name})")
+    typer.echo(f"wrote {count(report.rows, 'row')} to {out} (and {Path(report.readme).name})")
     for note in getattr(report, "notes", ()):
         typer.echo(f"note: {note}")
     print_advisory()

@@ -170,3 +170,28 @@ def test_report_pair_table_uses_words_not_design_symbols() -> None:
     for symbol in ("station k", "station l", "ρ̂", ">T<", "rho_hat", "c_hat", "T_self"):
         assert symbol not in html, symbol
     assert "error correlation" in html
+
+
+def test_counts_agree_with_their_noun(learned_store: LearnedStore, tmp_path: Path) -> None:
+    """'1 network magnitude', never '1 network magnitudes' (fusion.wording.count)."""
+    ls = learned_store
+    root = copy_store(ls.root, tmp_path / "copy")
+    res = invoke("finalize", "qv2025-00010", "--store", root, "--config", ls.config)
+    assert (res.exit_code, res.stdout) == (0, "ML: 1 network magnitude marked final\n")
+
+
+def test_learn_csv_tables_are_the_documented_exports(
+    learned_store: LearnedStore, tmp_path: Path
+) -> None:
+    """learn --csv wrote the learner's raw tables (integer codes k, l, symbols rho_hat);
+    it now writes what 'magfuse export' writes, each with its README."""
+    ls = learned_store
+    root = copy_store(ls.root, tmp_path / "copy")
+    out = tmp_path / "tables"
+    res = invoke("learn", "--csv", out, "--store", root, "--config", ls.config)
+    assert res.exit_code == 0, res.stderr
+    for name in ("stations", "pairs", "epochs"):
+        (path,) = out.glob(f"*-{name}.csv")
+        header = path.read_text(encoding="utf-8").splitlines()[0].replace('"', "").split(",")
+        assert not {"k", "l", "station", "rho_hat", "c_hat"} & set(header), (name, header)
+        assert ADVISORY in Path(f"{path}.README.txt").read_text(encoding="utf-8")
