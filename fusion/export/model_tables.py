@@ -164,8 +164,8 @@ MODEL_TABLE_COLUMNS: Final[dict[str, dict[str, ColumnSpec]]] = {
             "status",
             _S,
             "-",
-            "flagged; paired_elsewhere (a unit already has a flagged partner); negative "
-            "(negative correlation, not used); not_significant",
+            "flagged; paired-elsewhere (a unit already has a flagged partner); negative "
+            "(negative correlation, not used); not-significant",
         ),
     ),
     "epochs": _specs(
@@ -290,6 +290,9 @@ def model_table(
         first = [c for c in ("station_id", "unit_id", "unit_after") if c in frame.columns]
         frame = frame[[*first, *(c for c in frame.columns if c not in first)]]
     specs = [known.get(c) or _inferred_spec(c, frame[c]) for c in frame.columns]
+    if name == "pairs" and "status" in frame.columns:
+        # one style for every name magfuse writes: hyphens (fusion.flags)
+        frame = frame.assign(status=frame["status"].str.replace("_", "-", regex=False))
     frame = frame.rename(columns={s.source: s.name for s in specs})
     schema = pa.schema([s.field() for s in specs])
     return frame_to_table(frame, schema, where=f"model table {name!r}")

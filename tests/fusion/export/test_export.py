@@ -315,6 +315,9 @@ def test_model_table_exports_describe_every_column_without_internal_codes(
         assert symbol not in readme and symbol not in header, symbol
     if name != "pairs":
         assert "station epoch" in readme  # what a unit is, said where unit ids appear
+    else:  # status values in the one style of every name magfuse writes (fusion.flags)
+        status = pd.read_csv(out, keep_default_na=False)["status"]
+        assert status.str.fullmatch(r"[a-z]+(-[a-z]+)*").all(), set(status)
 
 
 def test_epochs_export_names_the_unit_after_the_step(tmp_path: Path) -> None:
