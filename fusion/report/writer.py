@@ -786,7 +786,7 @@ def _censoring_text(ev: pd.DataFrame) -> str:
         return ""
     text = (
         f"Non-detections: {c['n_used']} of {c['n_events']} events were re-estimated with the "
-        f"censored likelihood, using {c['n_nondetections']} non-detections (DESIGN §11)."
+        f"censored likelihood, using {c['n_nondetections']} non-detections (docs/censoring.md)."
     )
     sh = c["shift"]
     if "median" in sh:

@@ -233,7 +233,7 @@ def _censoring_lines(cens: dict[str, Any]) -> list[str]:
     after = cens.get("after")
     if not after:
         return []
-    lines = ["", "non-detections (censored likelihood, DESIGN §11):"]
+    lines = ["", "non-detections (censored likelihood, docs/censoring.md):"]
     for label in ("before", "after"):
         c = cens.get(label)
         if not c:

@@ -195,3 +195,12 @@ def test_learn_csv_tables_are_the_documented_exports(
         header = path.read_text(encoding="utf-8").splitlines()[0].replace('"', "").split(",")
         assert not {"k", "l", "station", "rho_hat", "c_hat"} & set(header), (name, header)
         assert ADVISORY in Path(f"{path}.README.txt").read_text(encoding="utf-8")
+
+
+def test_text_output_cites_published_docs_not_design_notes(learned_store: LearnedStore) -> None:
+    """Readers have docs/, not the development design notes ('DESIGN §11')."""
+    ls = learned_store
+    res = invoke("diff", ls.v2, "--store", ls.root, "--config", ls.config)
+    assert res.exit_code == 0, res.stderr
+    assert "non-detections (censored likelihood" in res.stdout  # the section that cited it
+    assert "DESIGN" not in res.stdout and "§" not in res.stdout
