@@ -183,9 +183,14 @@ def models_command(
         mark = "*" if r["active"] else " "
         typer.echo(
             f"{mark} {r['version']:<34} {_seconds(r['created']):<20} "
-            f"{_seconds(r['window_end']):<20} {r['stations']!s:>8} {r['pairs']!s:>5} "
-            f"{r['events']!s:>6}"
+            f"{_seconds(r['window_end']):<20} {_count(r['stations']):>8} {_count(r['pairs']):>5} "
+            f"{_count(r['events']):>6}"
         )
+
+
+def _count(value: Any) -> str:
+    """A count for the table (thousands separators), '-' when the version does not say."""
+    return number(value) if isinstance(value, int) else "-" if value is None else str(value)
 
 
 def _seconds(iso: Any) -> str:

@@ -25,6 +25,10 @@ _ROW = re.compile(
 )
 
 
+#: A number of four or more digits not written with thousands separators (dates, times, ids
+#: and version ids excluded by their neighbouring characters).
+_BARE_COUNT = re.compile(r"(?<![\w.:/,~+-])\d{4,}(?![\w.:/,-])")
+
 #: Words of the score table's header line.
 HEADER = ["method", "events", "RMSE", "raw", "RMSE", "offset", "68%", "coverage"]
 
@@ -104,6 +108,8 @@ def test_demo_prints_its_store_and_next_commands_that_work_on_it(
         out = invoke(*words[1:])
         assert out.exit_code == 0, out.stderr
         assert "no store" not in out.stdout + out.stderr
+        # human text: counts from 1,000 up with thousands separators (models: 2,369 events)
+        assert _BARE_COUNT.findall(out.stdout) == [], (words[1], out.stdout)
 
 
 @pytest.mark.slow
@@ -113,6 +119,6 @@ def test_demo_counts_read_as_english(demo: tuple[Result, Path]) -> None:
     res, _ = demo
     text = res.stdout
     assert not re.search(r"(?<![\d,.])1 (bias steps|events|stations|correlated pairs)\b", text)
-    bare = re.findall(r"(?<![\w.:/,~-])\d{4,}(?![\w.:/,-])", text)
+    bare = _BARE_COUNT.findall(text)
     assert bare == [], bare
     assert re.search(r"\b2,390\b", text)  # the demo's 2,390 events in the score table
