@@ -104,6 +104,24 @@ RENAMED: Final[dict[str, str]] = {
 }
 
 
+_OLD_METHODS: Final = ("censored_ml", "robust_gls", "single_station")
+#: Old flag names that stores hold (station flags are computed by each report, never stored).
+_OLD_STORED_FLAGS: Final = ("no-detection",)
+
+
+def _may_contain(values: pa.Array | pa.ChunkedArray, needle: bytes) -> bool:
+    """Whether the text bytes of ``values`` may hold ``needle`` (a fast search of the raw
+    string buffers; true on any doubt, e.g. a type without a plain data buffer)."""
+    chunks = values.chunks if isinstance(values, pa.ChunkedArray) else [values]
+    for chunk in chunks:
+        if not (pa.types.is_string(chunk.type) or pa.types.is_large_string(chunk.type)):
+            return True
+        data = chunk.buffers()[2]
+        if data is not None and needle in data.to_pybytes():
+            return True
+    return False
+
+
 def flag_table(flags: dict[str, str]) -> list[tuple[str, str, str]]:
     """``(flag, "-", meaning)`` rows for an export sidecar's table."""
     return [(name, "-", meaning) for name, meaning in flags.items()]
@@ -111,20 +129,20 @@ def flag_table(flags: dict[str, str]) -> list[tuple[str, str, str]]:
 
 def upgrade_methods(values: pa.Array | pa.ChunkedArray) -> pa.Array | pa.ChunkedArray:
     """``method`` values with old spellings replaced (exact matches; vectorised)."""
+    if not _may_contain(values, b"_"):  # today's names have no underscore; the old ones do
+        return values
     out = values
-    for old in ("censored_ml", "robust_gls", "single_station"):
-        hit = pc.equal(out, old)
-        if pc.any(hit).as_py():
-            out = pc.if_else(hit, pa.scalar(RENAMED[old]), out)
+    for old in _OLD_METHODS:
+        out = pc.if_else(pc.equal(out, old), pa.scalar(RENAMED[old]), out)
     return out
 
 
 def upgrade_flags(values: pa.Array | pa.ChunkedArray) -> pa.Array | pa.ChunkedArray:
     """``;``-joined flag lists with old spellings replaced (whole flags only; vectorised)."""
     out = values
-    for old in ("no-detection", "correlated"):
-        if not pc.any(pc.match_substring(out, old)).as_py():
-            continue  # the usual case: nothing to rename, one fast scan
+    for old in _OLD_STORED_FLAGS:
+        if not _may_contain(out, old.encode()):
+            continue  # the usual case: nothing to rename
         out = pc.replace_substring_regex(
             out, pattern=rf"(^|;){old}(;|$)", replacement=rf"\1{RENAMED[old]}\2"
         )

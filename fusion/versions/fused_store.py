@@ -700,7 +700,7 @@ class FusedStore:
                 return pa.schema([schema.field(c) for c in cols]).empty_table()
             keep = pc.is_in(table.column("event_id"), value_set=pa.array(event_ids, pa.string()))
             table = table.filter(keep)
-        return _upgrade_names(table.select(cols))  # types checked above; file's metadata
+        return table.select(cols)  # types checked above; metadata stays that of the file
 
     def _events_table(
         self,
@@ -721,7 +721,7 @@ class FusedStore:
         ]
         if not parts:
             return pa.schema([FUSED_EVENTS_SCHEMA.field(c) for c in cols]).empty_table()
-        return pa.concat_tables(parts)
+        return _upgrade_names(pa.concat_tables(parts))
 
     @staticmethod
     def _latest(table: pa.Table) -> pa.Table:
@@ -914,7 +914,7 @@ class FusedStore:
         # Group by the order of ``rows``, keep the run's own row order inside (stable sort).
         key = pa.table({"p": pa.array(p_int[match]), "s": table.column("run_seq")})
         order = pc.sort_indices(key, [("p", "ascending"), ("s", "ascending")])
-        return table.take(order)
+        return _upgrade_names(table.take(order))
 
     def _final_ids(self, m: _Manifest, mtype: str) -> pa.Array:
         t = self._events_table(
