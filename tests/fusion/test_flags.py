@@ -78,3 +78,30 @@ def test_names_from_older_stores_read_as_todays() -> None:
     assert out.column("method").to_pylist()[0] == "censored-likelihood"
     assert out.column("flags").to_pylist()[1] == "outlier;no-usable-detection"
     assert out.schema == table.schema
+
+
+def test_store_written_with_old_names_reads_with_todays(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    """A fused store holding 'censored_ml', 'robust_gls' and 'no-detection' (written before
+    the rename) is read with today's names; the files stay as they are."""
+    import dataclasses
+    import warnings
+
+    from fusion.model.simulation import SimulationConfig, simulate_network
+    from fusion.model.station_model import StationModel
+    from fusion.network.network_magnitude import fuse_events
+    from fusion.versions.fused_store import FusedStore
+
+    net = simulate_network(SimulationConfig(n_stations=6, n_events=40, pair_rhos=()), seed=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = StationModel().fit(net.observations)
+        fused = fuse_events(net.observations, model.parameters_)
+    ev = fused.events.copy()
+    ev["method"] = ev["method"].replace({"gls": "censored_ml", "robust-gls": "robust_gls"})
+    ev.loc[ev.index[0], "flags"] = "outlier;no-detection"
+    store = FusedStore(tmp_path)
+    store.write_run(dataclasses.replace(fused, events=ev), model_version="ML-old")
+    cur = store.current("ML").set_index("event_id")
+    assert set(cur["method"]) <= set(METHODS)
+    assert "censored-likelihood" in set(cur["method"])
+    assert cur.loc[str(ev["event_id"].iloc[0]), "flags"] == "outlier;no-usable-detection"
