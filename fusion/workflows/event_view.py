@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 from fusion.advisory import ADVISORY
+from fusion.wording import count
 from stations.errors import ConfigError, EventNotFoundError
 
 if TYPE_CHECKING:
@@ -140,7 +141,7 @@ def render_event(ex: EventExplanation) -> str:
         f"({ev.get('max_influence_station') or '-'})",
         f"method             {est.method}"
         + (
-            f", {int(ev.get('n_nondetections_used', 0))} non-detections used, "
+            f", {count(int(ev.get('n_nondetections_used', 0)), 'non-detection')} used, "
             f"shift {_f(ev.get('censoring_shift'), '+.3f')}"
             if ev.get("n_nondetections_used") or est.method == "censored-likelihood"
             else ""
