@@ -144,7 +144,7 @@ def main() -> None:
     print(
         f"robust iterations: median {int(ev['n_iter'].median())}, max {int(ev['n_iter'].max())}; "
         f"not converged: {int((~ev['converged']).sum())} of {len(ev):,} events; censoring used "
-        f"on {(cens.events['method'] == 'censored_ml').mean():.3f} of events"
+        f"on {(cens.events['method'] == 'censored-likelihood').mean():.3f} of events"
     )
 
 

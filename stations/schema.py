@@ -33,15 +33,18 @@ import pyarrow as pa
 from stations.errors import SchemaError
 
 __all__ = [
+    "IASPEI_STANDARD_TYPES",
     "INPUT_COLUMNS",
     "MAGNITUDE_TYPE_ALIASES",
     "QUARANTINE_SCHEMA",
     "RECORD_KEY",
     "RECORD_SCHEMA",
+    "REPORTED_TYPES",
     "SCHEMA_VERSION",
     "VALUE_COLUMNS",
     "AmplitudeUnit",
     "MagnitudeType",
+    "accepted_types_text",
     "canonical_event_ids",
     "check_schema",
     "normalise_magnitude_type",
@@ -73,6 +76,36 @@ class MagnitudeType(StrEnum):
     Mw = "Mw"
     Mwp = "Mwp"
     Me = "Me"
+
+
+#: The IASPEI standard magnitude names (IASPEI 2013, Summary of Magnitude Working Group
+#: recommendations on standard procedures for determining earthquake magnitudes from digital
+#: data; Bormann & Dewey 2014, NMSOP-2 IS 3.3). ``--compute`` computes ML, mb, mB_BB, Ms_20
+#: and Ms_BB from amplitudes (stations/formulas).
+IASPEI_STANDARD_TYPES: Final[tuple[MagnitudeType, ...]] = (
+    MagnitudeType.ML,
+    MagnitudeType.mb,
+    MagnitudeType.mB_BB,
+    MagnitudeType.Ms_20,
+    MagnitudeType.Ms_BB,
+    MagnitudeType.mb_Lg,
+    MagnitudeType.Mw,
+)
+#: Other names bulletins carry: accepted and kept as reported (magfuse computes none of them).
+REPORTED_TYPES: Final[tuple[MagnitudeType, ...]] = tuple(
+    m for m in MagnitudeType if m not in IASPEI_STANDARD_TYPES
+)
+
+
+def accepted_types_text() -> str:
+    """The accepted magnitude types in words, IASPEI standard names first.
+
+    >>> accepted_types_text().startswith("ML, mb, mB_BB, Ms_20, Ms_BB, mb_Lg, Mw (IASPEI")
+    True
+    """
+    standard = ", ".join(m.value for m in IASPEI_STANDARD_TYPES)
+    reported = ", ".join(m.value for m in REPORTED_TYPES)
+    return f"{standard} (IASPEI standard names) or {reported} (other names, accepted as reported)"
 
 
 #: Spellings met in bulletins that map to one canonical type without ambiguity. ``MB`` is left
@@ -111,8 +144,7 @@ def normalise_magnitude_type(text: str) -> MagnitudeType:
         pass
     if stripped in MAGNITUDE_TYPE_ALIASES:
         return MAGNITUDE_TYPE_ALIASES[stripped]
-    allowed = ", ".join(m.value for m in MagnitudeType)
-    raise ValueError(f"unknown magnitude type {text!r}; use one of {allowed}")
+    raise ValueError(f"unknown magnitude type {text!r}; use one of {accepted_types_text()}")
 
 
 class AmplitudeUnit(StrEnum):

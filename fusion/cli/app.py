@@ -11,10 +11,10 @@ bodies, so ``magfuse --help`` and ``magfuse event`` start fast.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, get_args
 
 import typer
-from typer.core import TyperGroup
+from typer.core import TyperArgument, TyperCommand, TyperGroup
 
 from fusion.advisory import ADVISORY
 from stations.errors import MagfuseError
@@ -42,6 +42,64 @@ class _ErrorBoundary(TyperGroup):
             raise typer.Exit(code=1) from None
 
 
+def _metavar(param: Any) -> str:
+    """A plain word for a parameter's value: its choices, FILE/FOLDER/PATH, INTEGER, NUMBER,
+    TEXT (an argument without choices is named by itself, e.g. ``VERSION``)."""
+    desc = param.type_descriptor
+    if desc.is_choice:
+        return "|".join(str(getattr(c, "value", c)) for c in desc.choices)
+    if desc.is_path:
+        return {"file": "FILE", "dir": "FOLDER"}.get(desc.path_type, "PATH")
+    if isinstance(param, TyperArgument):
+        return str(param.name or "value").upper()
+    inner = get_args(desc.annotation)[0] if desc.is_list else desc.annotation
+    return {int: "INTEGER", float: "NUMBER"}.get(inner, "TEXT")
+
+
+class _PlainHelpCommand(TyperCommand):
+    """A command whose ``--help`` shows plain words: ``FILE...``, ``--top INTEGER``, never
+    Python type names (``<list[Path]>``) or braces (``{paths}...``).
+
+    Each parameter without a ``metavar`` gets one from :func:`_metavar`; an argument's help
+    line and the usage line are written here because Typer would add its type name to them.
+    """
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        for param in self.params:
+            if param.metavar is None and not getattr(param, "is_flag", False):
+                param.metavar = _metavar(param)
+
+    @staticmethod
+    def _argument_word(param: Any) -> str:
+        word = param.metavar or (param.name or "").upper()
+        return f"{word}..." if param.nargs != 1 else word
+
+    def collect_usage_pieces(self, ctx: Any) -> list[str]:
+        pieces = [self.options_metavar] if self.options_metavar else []
+        for param in self.get_params(ctx):
+            if isinstance(param, TyperArgument):
+                word = self._argument_word(param)
+                pieces.append(word if param.required else f"[{word}]")
+        return pieces
+
+    def format_options(self, ctx: Any, formatter: Any) -> None:
+        rows = [
+            (self._argument_word(p), (p.help or "") + ("  [required]" if p.required else ""))
+            for p in self.get_params(ctx)
+            if isinstance(p, TyperArgument)
+        ]
+        opts = [
+            rv
+            for p in self.get_params(ctx)
+            if p.param_type_name == "option" and (rv := p.get_help_record(ctx)) is not None
+        ]
+        for title, records in (("Arguments", rows), ("Options", opts)):
+            if records:
+                with formatter.section(title):
+                    formatter.write_dl(records)
+
+
 app = typer.Typer(
     name="magfuse",
     cls=_ErrorBoundary,
@@ -62,6 +120,9 @@ def _register() -> None:
 
     for name in _COMMAND_MODULES:
         importlib.import_module(f"fusion.cli.{name}").register(app)
+    for info in app.registered_commands:  # plain help words for every command (see class)
+        if info.cls in (None, TyperCommand):
+            info.cls = _PlainHelpCommand
 
 
 #: Command modules, each with ``register(app)``; order is the order of ``magfuse --help``.

@@ -61,11 +61,13 @@ def compute_command(
             start=start,
             end=end,
         )
+    from fusion.wording import number
+
     r = outcome.report
     typer.echo(
-        f"{mtype}: {outcome.computed} recomputed with {options.ml_correction.name} / "
-        f"{options.q_table.name}; {r.revised} changed (new revision), {r.duplicate} unchanged, "
-        f"{r.quarantined} quarantined; "
+        f"{mtype}: {number(outcome.computed)} recomputed with {options.ml_correction.name} / "
+        f"{options.q_table.name}; {number(r.revised)} changed (new revision), "
+        f"{number(r.duplicate)} unchanged, {number(r.quarantined)} quarantined; "
         + (f"batch {r.batch_id}" if r.batch_id else "nothing written (no value changed)")
     )
     print_advisory()

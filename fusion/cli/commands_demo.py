@@ -18,7 +18,11 @@ def register(app: typer.Typer) -> None:
 def demo_command(
     workdir: Annotated[
         Path,
-        typer.Option("--workdir", help="Folder for the demo's store, input split and report."),
+        typer.Option(
+            "--workdir",
+            metavar="FOLDER",
+            help="Folder for the demo's store, input split and report.",
+        ),
     ] = Path("magfuse-demo"),
 ) -> None:
     """Ingest, learn, adopt, fuse, dry-run a second half-year, explain an event, report.

@@ -12,6 +12,7 @@ from fusion.cli.common import (
     JsonOption,
     StoreOption,
     TypeOption,
+    check_override,
     echo_json,
     load,
     open_registry,
@@ -21,6 +22,7 @@ from fusion.cli.common import (
     print_advisory,
     writing,
 )
+from fusion.wording import count, number
 
 if TYPE_CHECKING:
     from fusion.versions.model_registry import ModelVersion
@@ -40,19 +42,30 @@ AsOfOption = Annotated[
     str | None,
     typer.Option(
         "--as-of",
+        metavar="TIME",
         help="End of the learning window, ISO 8601 UTC (default: latest origin time stored).",
     ),
 ]
 HalfLifeOption = Annotated[
     float | None,
-    typer.Option("--half-life", help="Half-life of the event weights, days ([learn])."),
+    typer.Option(
+        "--half-life", metavar="DAYS", help="Half-life of the event weights, days ([learn])."
+    ),
 ]
 WindowOption = Annotated[
-    float | None, typer.Option("--window", help="Hard window, days ([learn]).")
+    float | None,
+    typer.Option("--window", metavar="DAYS", help="Hard window, days, > 0 ([learn])."),
 ]
 CsvDirOption = Annotated[
     Path | None,
-    typer.Option("--csv", help="Also write the station, pair and epoch tables as CSV here."),
+    typer.Option(
+        "--csv",
+        metavar="FOLDER",
+        help=(
+            "Also write the station, pair and epoch tables into this folder as CSV files, "
+            "each with a README, as 'magfuse export' writes them."
+        ),
+    ),
 ]
 
 
@@ -64,12 +77,16 @@ def _summary_lines(v: ModelVersion) -> list[str]:
         f"candidate  {v.version_id}  (not adopted; adopt with 'magfuse adopt {v.version_id}')",
         f"window     {m.get('window_start') or '-'} .. {m.get('window_end')}  "
         f"half-life {m.get('half_life_days'):g} d",
-        f"data       {m.get('n_events'):,} events, {m.get('n_readings'):,} station magnitudes, "
-        f"{m.get('n_nondetections'):,} non-detections",
-        f"stations   {m.get('n_stations')} ({m.get('n_units')} station epochs); "
-        f"{m.get('n_prior_dominated')} prior-dominated, {m.get('n_uncalibrated')} uncalibrated",
-        f"pairs      {m.get('n_pairs_flagged')} correlated of {m.get('n_pairs_tested')} tested; "
-        f"{m.get('n_epoch_splits')} bias steps split into epochs",
+        f"data       {count(m.get('n_events', 0), 'event')}, "
+        f"{count(m.get('n_readings', 0), 'station magnitude')}, "
+        f"{count(m.get('n_nondetections', 0), 'non-detection')}",
+        f"stations   {number(m.get('n_stations', 0))} "
+        f"({count(m.get('n_units', 0), 'station epoch')}); "
+        f"{number(m.get('n_prior_dominated', 0))} prior-dominated, "
+        f"{number(m.get('n_uncalibrated', 0))} uncalibrated",
+        f"pairs      {number(m.get('n_pairs_flagged', 0))} correlated of "
+        f"{number(m.get('n_pairs_tested', 0))} tested; "
+        f"{count(m.get('n_epoch_splits', 0), 'bias step')} split into epochs",
         f"anchor     {anchor.get('kind')}: level {anchor.get('value', float('nan')):+.3f}, "
         f"calibration uncertainty {anchor.get('se', float('nan')):.3f}",
         f"fit        {m.get('n_iter')} iterations, "
@@ -98,9 +115,12 @@ def learn_command(
     The candidate is not adopted: compare it with 'magfuse diff' and switch with
     'magfuse adopt'. Its station, pair and epoch tables are stored with it (Parquet).
     """
+    from fusion.export import export_model_table
     from fusion.workflows.learning import learn_candidate
 
     cfg = load(config)
+    check_override(cfg, "learn", "half_life_days", half_life, "--half-life")
+    check_override(cfg, "learn", "window_days", window, "--window")
     st = open_store(cfg, store)
     if csv is not None:
         output_path(csv, option="--csv", kind="folder")
@@ -117,7 +137,8 @@ def learn_command(
     v = outcome.version
     if csv is not None:
         for name in ("stations", "pairs", "epochs"):
-            reg.load_table(v, name).to_csv(csv / f"{v.version_id}-{name}.csv", index=False)
+            # the same files as 'magfuse export NAME': plain column names and a README sidecar
+            export_model_table(reg, v, name, csv / f"{v.version_id}-{name}.csv", format="csv")
     if json_out:
         echo_json({**v.meta, "identical_to": outcome.identical_to})
     elif outcome.identical_to is not None:
@@ -157,6 +178,7 @@ def models_command(
     versions = reg.versions(type)
     actives = {v.magnitude_type: reg.active_id(v.magnitude_type) for v in versions}
     rows = [_version_row(v, actives[v.magnitude_type]) for v in versions]
+    print_advisory()  # on stderr, so the JSON below stays machine-readable
     if json_out:
         echo_json(rows)
         return
@@ -170,9 +192,14 @@ def models_command(
         mark = "*" if r["active"] else " "
         typer.echo(
             f"{mark} {r['version']:<34} {_seconds(r['created']):<20} "
-            f"{_seconds(r['window_end']):<20} {r['stations']!s:>8} {r['pairs']!s:>5} "
-            f"{r['events']!s:>6}"
+            f"{_seconds(r['window_end']):<20} {_count(r['stations']):>8} {_count(r['pairs']):>5} "
+            f"{_count(r['events']):>6}"
         )
+
+
+def _count(value: Any) -> str:
+    """A count for the table (thousands separators), '-' when the version does not say."""
+    return number(value) if isinstance(value, int) else "-" if value is None else str(value)
 
 
 def _seconds(iso: Any) -> str:
@@ -180,7 +207,9 @@ def _seconds(iso: Any) -> str:
     return str(iso or "-").replace("T", " ")[:19]
 
 
-VersionArgument = Annotated[str, typer.Argument(help="Model version id (see 'magfuse models').")]
+VersionArgument = Annotated[
+    str, typer.Argument(help="Model version id (see 'magfuse models').", metavar="VERSION")
+]
 
 
 def adopt_command(

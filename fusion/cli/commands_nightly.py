@@ -30,7 +30,9 @@ def register(app: typer.Typer) -> None:
 def nightly_command(
     inbox: Annotated[
         Path | None,
-        typer.Option("--inbox", help="Folder of new files (default: [nightly] inbox)."),
+        typer.Option(
+            "--inbox", metavar="FOLDER", help="Folder of new files (default: [nightly] inbox)."
+        ),
     ] = None,
     apply: Annotated[
         bool,

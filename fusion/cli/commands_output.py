@@ -11,7 +11,6 @@ import typer
 from fusion.cli.common import (
     ConfigOption,
     SinceOption,
-    StationsOption,
     StoreOption,
     TypeOption,
     UntilOption,
@@ -24,6 +23,7 @@ from fusion.cli.common import (
     print_advisory,
     writing,
 )
+from fusion.wording import count, number
 
 __all__ = ["register"]
 
@@ -70,8 +70,8 @@ def fuse_command(
     ev = res.fused.events
     moved = (ev["magnitude"] - ev["plain_mean"]).abs()
     typer.echo(
-        f"{mtype}: {report.events_written:,} events fused with {res.version.version_id}; "
-        f"{report.skipped_final:,} left alone (final); "
+        f"{mtype}: {count(report.events_written, 'event')} fused with "
+        f"{res.version.version_id}; {number(report.skipped_final)} left alone (final); "
         f"median |fused - plain mean| {moved.median():.3f}, largest {moved.max():.3f}"
     )
     print_advisory()
@@ -79,11 +79,16 @@ def fuse_command(
 
 def finalize_command(
     event_ids: Annotated[
-        list[str] | None, typer.Argument(help="Events to mark final.", show_default=False)
+        list[str] | None,
+        typer.Argument(help="Events to mark final.", show_default=False, metavar="EVENT_ID"),
     ] = None,
     before: Annotated[
         str | None,
-        typer.Option("--before", help="Mark final every event with origin before this time."),
+        typer.Option(
+            "--before",
+            metavar="TIME",
+            help="Mark final every event with origin before this time (ISO 8601 UTC).",
+        ),
     ] = None,
     type: TypeOption = None,
     store: StoreOption = None,
@@ -102,7 +107,8 @@ def finalize_command(
         n = FusedStore(st.root, lock=st.write_lock).finalize(
             mtype, before=parse_time(before, "--before"), event_ids=event_ids or None
         )
-    typer.echo(f"{mtype}: {n:,} network magnitudes marked final")
+    typer.echo(f"{mtype}: {count(n, 'network magnitude')} marked final")
+    print_advisory()
 
 
 class ExportWhat(StrEnum):
@@ -123,10 +129,23 @@ class ExportFormatChoice(StrEnum):
 
 
 def export_command(
-    what: Annotated[ExportWhat, typer.Argument(help="magnitudes, stations, pairs or epochs.")],
-    out: Annotated[Path, typer.Option("--out", help="File to write.")],
+    what: Annotated[
+        ExportWhat,
+        typer.Argument(
+            metavar="WHAT",
+            help=(
+                "magnitudes (network magnitudes from 'magfuse fuse'), or a model version's "
+                "stations, pairs or epochs table."
+            ),
+        ),
+    ],
+    out: Annotated[Path, typer.Option("--out", metavar="FILE", help="File to write.")],
     format: Annotated[
-        ExportFormatChoice, typer.Option("--format", help="csv, parquet or quakeml.")
+        ExportFormatChoice,
+        typer.Option(
+            "--format",
+            help="csv, parquet or quakeml (QuakeML 1.2; magnitudes only).",
+        ),
     ] = ExportFormatChoice.csv,
     type: TypeOption = None,
     since: SinceOption = None,
@@ -137,7 +156,7 @@ def export_command(
 ) -> None:
     """Export fused magnitudes (from 'magfuse fuse') or a model version's tables.
 
-    Every export writes a README sidecar (<file>.README.txt) with the advisory caution and
+    Every export writes a README sidecar (FILE.README.txt) with the advisory caution and
     every column with its unit.
     """
     from fusion.export import export_magnitudes, export_model_table
@@ -169,18 +188,34 @@ def export_command(
         reg = open_registry(st)
         v = resolve_version(reg, mtype, version)
         report = export_model_table(reg, v, what.value, out, format=format.value)
-    typer.echo(f"wrote {report.rows:,} rows to {out} (and {Path(report.readme).name})")
+    typer.echo(f"wrote {count(report.rows, 'row')} to {out} (and {Path(report.readme).name})")
     for note in getattr(report, "notes", ()):
         typer.echo(f"note: {note}")
     print_advisory()
 
 
+ReportStationsOption = Annotated[
+    Path | None,
+    typer.Option(
+        "--stations",
+        help=(
+            "StationXML or station CSV with station positions: draws the stations on the "
+            "report's map of correlated pairs (default: [compute] stations; without it, "
+            "no map)."
+        ),
+        dir_okay=False,
+    ),
+]
+
+
 def report_command(
-    out: Annotated[Path, typer.Option("--out", help="Folder for the report files.")],
+    out: Annotated[
+        Path, typer.Option("--out", metavar="FOLDER", help="Folder for the report files.")
+    ],
     type: TypeOption = None,
     since: SinceOption = None,
     version: VersionOption = None,
-    stations: StationsOption = None,
+    stations: ReportStationsOption = None,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:

@@ -13,6 +13,7 @@ from fusion.cli.common import (
     StoreOption,
     TypeOption,
     VersionOption,
+    check_override,
     echo_json,
     load,
     open_registry,
@@ -31,9 +32,12 @@ def register(app: typer.Typer) -> None:
 
 
 HtmlOption = Annotated[
-    Path | None, typer.Option("--html", help="Also write a self-contained HTML page here.")
+    Path | None,
+    typer.Option("--html", metavar="FILE", help="Also write a self-contained HTML page here."),
 ]
-PngOption = Annotated[Path | None, typer.Option("--png", help="Also write the picture as PNG.")]
+PngOption = Annotated[
+    Path | None, typer.Option("--png", metavar="FILE", help="Also write the picture as PNG.")
+]
 
 
 RecomputeOption = Annotated[
@@ -47,7 +51,7 @@ RecomputeOption = Annotated[
 
 
 def event_command(
-    event_id: Annotated[str, typer.Argument(help="Event id as stored.")],
+    event_id: Annotated[str, typer.Argument(help="Event id as stored.", metavar="EVENT_ID")],
     type: TypeOption = None,
     version: VersionOption = None,
     recompute: RecomputeOption = False,
@@ -97,10 +101,20 @@ CandidateArgument = Annotated[
     ),
 ]
 DaysOption = Annotated[
-    float | None, typer.Option("--days", help="Recent events compared, days ([nightly]).")
+    float | None,
+    typer.Option(
+        "--days",
+        metavar="DAYS",
+        help="Recent events compared, days, > 0 ([nightly] dry_run_days).",
+    ),
 ]
 TopOption = Annotated[
-    int | None, typer.Option("--top", help="Number of most-moved events listed ([nightly]).")
+    int | None,
+    typer.Option(
+        "--top",
+        metavar="N",
+        help="Number of most-moved events listed, >= 1 ([nightly] dry_run_top).",
+    ),
 ]
 
 
@@ -120,6 +134,8 @@ def diff_command(
     from fusion.workflows.dry_run import dry_run, newer_candidate, no_candidate_message
 
     cfg = load(config)
+    check_override(cfg, "nightly", "dry_run_days", days, "--days")
+    check_override(cfg, "nightly", "dry_run_top", top, "--top")
     st = open_store(cfg, store)
     registry = open_registry(st)
     if candidate is None:

@@ -39,7 +39,11 @@ FormatOption = Annotated[
     str | None,
     typer.Option(
         "--format",
-        help="Reader format of every PATH (default: recognise each file by its content).",
+        metavar="FORMAT",
+        help=(
+            "Reader format of every FILE: parquet, quakeml, ims10, mchedr, yellowstone or csv "
+            "(default: recognise each file by its content)."
+        ),
     ),
 ]
 NearDuplicatesFlag = Annotated[
@@ -52,7 +56,11 @@ NearDuplicatesFlag = Annotated[
 ]
 PathsArgument = Annotated[
     list[Path],
-    typer.Argument(help="Files of station magnitudes; each becomes one batch.", show_default=False),
+    typer.Argument(
+        help="Files of station magnitudes; each becomes one batch.",
+        show_default=False,
+        metavar="FILE",
+    ),
 ]
 
 
@@ -77,10 +85,13 @@ def _report_line(path: Path, outcome: IngestOutcome) -> str:
         return f"{path}: same content as batch {report.same_content_as}; nothing added"
     if report.no_rows:
         return f"{path}: no rows (only a header?); nothing added, no batch created"
-    computed = f", {outcome.computed} magnitudes computed" if outcome.computed else ""
+    from fusion.wording import count, number
+
+    computed = f", {count(outcome.computed, 'magnitude')} computed" if outcome.computed else ""
     return (
-        f"{path}: {report.accepted} accepted ({report.revised} revised), "
-        f"{report.duplicate} duplicate, {report.quarantined} quarantined{computed}; "
+        f"{path}: {number(report.accepted)} accepted ({number(report.revised)} revised), "
+        f"{number(report.duplicate)} duplicate, {number(report.quarantined)} quarantined"
+        f"{computed}; "
         f"batch {report.batch_id}"
     )
 
@@ -269,7 +280,7 @@ def store_command(
     """Summarise the store: rows, detections, time range, events, stations, revisions.
 
     Rows are counted per magnitude type, in the current view (latest revision of each
-    reading) and over every revision; also quarantined rows and batches. ``--json`` prints
+    reading) and over every revision; also quarantined rows and batches. --json prints
     the same figures for machines.
     """
     from stations.store import StationMagnitudeStore

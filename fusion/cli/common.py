@@ -5,7 +5,7 @@ from __future__ import annotations
 from contextlib import AbstractContextManager
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import typer
 
@@ -26,22 +26,38 @@ ConfigOption = Annotated[
 ]
 StoreOption = Annotated[
     Path | None,
-    typer.Option("--store", help="Store directory (default: [store] path of the configuration)."),
+    typer.Option(
+        "--store",
+        metavar="FOLDER",
+        help="Store folder (default: [store] path of the configuration).",
+    ),
 ]
 JsonOption = Annotated[bool, typer.Option("--json", help="Print JSON for machines.")]
 TypeOption = Annotated[
     str | None,
-    typer.Option("--type", help="Magnitude type (default: [learn] magnitude_type)."),
+    typer.Option(
+        "--type",
+        metavar="TYPE",
+        help=(
+            "Magnitude type: ML, mb, mB_BB, Ms_20, Ms_BB, mb_Lg, Mw (IASPEI standard names) "
+            "or MLv, mB, Ms, Md, Mc, Mwp, Me (accepted as reported); default: [learn] "
+            "magnitude_type."
+        ),
+    ),
 ]
 SinceOption = Annotated[
-    str | None, typer.Option("--since", help="Start of the window, ISO 8601 UTC (inclusive).")
+    str | None,
+    typer.Option("--since", metavar="TIME", help="Start of the window, ISO 8601 UTC (inclusive)."),
 ]
 UntilOption = Annotated[
-    str | None, typer.Option("--until", help="End of the window, ISO 8601 UTC (exclusive).")
+    str | None,
+    typer.Option("--until", metavar="TIME", help="End of the window, ISO 8601 UTC (exclusive)."),
 ]
 VersionOption = Annotated[
     str | None,
-    typer.Option("--version", help="Model version to use (default: the active one)."),
+    typer.Option(
+        "--version", metavar="VERSION", help="Model version to use (default: the active one)."
+    ),
 ]
 ComputeFlag = Annotated[
     bool,
@@ -63,6 +79,7 @@ DefaultNetworkOption = Annotated[
     str | None,
     typer.Option(
         "--default-network",
+        metavar="CODE",
         help="Network code for stations named without one (IMS1.0, NEIC mchedr).",
     ),
 ]
@@ -73,6 +90,41 @@ def load(config: Path | None) -> MagfuseConfig:
     from fusion.settings import load_config
 
     return load_config(config)
+
+
+def check_override(cfg: MagfuseConfig, section: str, field: str, value: Any, option: str) -> Any:
+    """A command-line value that overrides ``[section] field``, checked by the same rule.
+
+    The settings model (:mod:`fusion.settings`) holds each setting's range; an option that
+    overrides it must meet that range too, or ``--top 0`` would list nothing and
+    ``--window -1`` would read no data and blame the store.
+
+    Returns
+    -------
+    The value (``None`` passes through: the configuration's value applies).
+
+    Raises
+    ------
+    ConfigError
+        One line naming the option, the value and the rule.
+    """
+    if value is None:
+        return None
+    from pydantic import ValidationError
+
+    from stations.errors import ConfigError
+
+    current = getattr(cfg, section)
+    try:
+        type(current).model_validate({**current.model_dump(), field: value})
+    except ValidationError as exc:
+        rule = exc.errors()[0]["msg"]
+        rule = rule[0].lower() + rule[1:]
+        raise ConfigError(
+            f"{option} {value!r}: {rule} (the rule of [{section}] {field}); give a value in "
+            "range or leave the option out to use the configuration's"
+        ) from None
+    return value
 
 
 def compute_setup(

@@ -34,9 +34,9 @@ the unit and the fused-store column it comes from:
 ``evaluation_status`` (-; from ``evaluation_status``)
     preliminary, reviewed or final (QuakeML EvaluationStatus)
 ``flags`` (-; from ``flags``)
-    ';'-joined event flags (single-station, inconsistent, outlier, ...)
+    ';'-joined event flags; each is explained in the README sidecar
 ``method`` (-; from ``method``)
-    gls, robust_gls, censored_ml, single_station or none
+    gls, robust-gls, censored-likelihood, single-station or none (README sidecar)
 ``mag_minus_plain_mean`` (magnitude units; from ``minus_plain_mean``)
     mag - plain_mean
 ``mag_uncertainty_scaled`` (magnitude units; from ``se_scaled``)
@@ -84,6 +84,7 @@ Birge R. T. (1932). The calculation of errors by the method of least squares. Ph
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from datetime import UTC, datetime
 from pathlib import Path
@@ -171,9 +172,15 @@ MAGNITUDE_COLUMNS: Final = (
         "flags",
         _S,
         "-",
-        "';'-joined event flags (single-station, inconsistent, outlier, ...)",
+        "';'-joined event flags; each is explained in the README sidecar",
     ),
-    ColumnSpec("method", "method", _S, "-", "gls, robust_gls, censored_ml, single_station or none"),
+    ColumnSpec(
+        "method",
+        "method",
+        _S,
+        "-",
+        "gls, robust-gls, censored-likelihood, single-station or none (README sidecar)",
+    ),
     ColumnSpec("mag_minus_plain_mean", "minus_plain_mean", _F, _MU, "mag - plain_mean"),
     ColumnSpec(
         "mag_uncertainty_scaled", "se_scaled", _F, _MU, "mag_uncertainty * max(1, birge_ratio)"
@@ -297,6 +304,24 @@ def _versions(table: pa.Table) -> tuple[str, ...]:
     return tuple(sorted(set(col.to_pylist())))
 
 
+def flag_notes(*, rows: bool = False) -> list[str]:
+    """Sidecar paragraphs: every ``method`` value and event flag (and station-magnitude flag
+    with ``rows``) with its meaning (:mod:`fusion.flags`)."""
+    from fusion.flags import EVENT_FLAGS, METHODS, ROW_FLAGS
+
+    def block(title: str, table: dict[str, str]) -> str:
+        width = max(len(k) for k in table)
+        return "\n".join([title, *(f"  {k:<{width}}  {v}" for k, v in table.items())])
+
+    notes = [
+        block("method (how the network magnitude was computed):", METHODS),
+        block("Event flags (';'-joined in flags):", EVENT_FLAGS),
+    ]
+    if rows:
+        notes.append(block("Station-magnitude flags:", ROW_FLAGS))
+    return notes
+
+
 def write_magnitudes(
     events: pd.DataFrame,
     path: Path,
@@ -357,7 +382,7 @@ def write_magnitudes(
         events, model_version=model_version, evaluation_status=evaluation_status
     )
     types = sorted(set(table.column("magnitude_type").to_pylist()))
-    return export_table(
+    report = export_table(
         table,
         path,
         fmt,
@@ -366,7 +391,10 @@ def write_magnitudes(
         model_versions=_versions(table),
         provenance=[("Magnitude types", ", ".join(types) or "-")],
         now=created,
+        notes=flag_notes(),
     )
+    # the command line prints a report's notes: they are for what needs attention only
+    return dataclasses.replace(report, notes=())
 
 
 def export_magnitudes(

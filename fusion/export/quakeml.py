@@ -1,7 +1,7 @@
 """Fused network magnitudes as QuakeML 1.2, through ObsPy's event model (``obspy.core.event``).
 
 One ``Event`` per event with a finite fused magnitude; events without one (flag
-``no-detection``) are left out and counted. Field mapping (QuakeML BED 1.2 names; magfuse
+``no-usable-detection``) are left out and counted. Field mapping (QuakeML BED 1.2 names; magfuse
 columns of :class:`~fusion.versions.fused_store.FusedStore` frames):
 
 =============================================== =========================== ==================
@@ -66,10 +66,13 @@ events whose location the caller gives (``readings``, columns of the station sto
 source's origin, copied, and becomes ``preferredOriginID``. An event without a known location
 gets the network magnitude alone (with ``stationCount``), no station magnitudes, and its
 origin time in an event comment ``origin_time=...``; its station rows stay in the CSV and
-Parquet exports. The magnitude does not become
-``preferredMagnitudeID``: magfuse magnitudes are advisory, and the preferred magnitude is the
-publishing authority's choice (:data:`fusion.advisory.ADVISORY`, also the first comment of
-``eventParameters``).
+Parquet exports.
+
+**Preferred magnitude.** Each event carries exactly one magnitude, the fused network magnitude,
+and it is the event's ``preferredMagnitudeID``, so QuakeML readers (e.g. ObsPy's
+``Event.preferred_magnitude()``) find it. It is preferred *within this file*: magfuse
+magnitudes stay advisory, and the magnitude of record is the publishing authority's
+(:data:`fusion.advisory.ADVISORY`, also the first comment of ``eventParameters``).
 
 References
 ----------
@@ -132,28 +135,51 @@ _NAT: Final = np.iinfo(np.int64).min
 _SAFE: Final = re.compile(r"[A-Za-z0-9._-]")
 _ESCAPED: Final = re.compile(r"(?:~[0-9A-F]{2})+")
 
-#: The README's mapping table: (QuakeML element, magfuse column, unit).
+#: The sidecar's mapping table: (QuakeML element, source, unit). A source in the form of a
+#: name is a column of the CSV/Parquet magnitude export
+#: (:data:`fusion.export.magnitudes.MAGNITUDE_COLUMNS`); anything else is said in words.
 QUAKEML_MAPPING: Final = (
     ("event/@publicID", "event_id", "-"),
+    ("event/preferredMagnitudeID", "the network magnitude below", "-"),
     ("origin/time", "origin_time", "UTC"),
-    ("origin/latitude, longitude", "event_latitude, event_longitude", "deg"),
-    ("origin/depth", "event_depth * 1000", "m"),
-    ("magnitude/mag/value", "magnitude", "magnitude units"),
-    ("magnitude/mag/uncertainty", "se (1 sigma) or interval half-width", "magnitude units"),
-    ("magnitude/mag/confidenceLevel", "68.27 for se; 100*confidence_level", "percent"),
+    ("origin/latitude, longitude", "event location of the input bulletin", "deg"),
+    ("origin/depth", "event depth of the input bulletin, km * 1000", "m"),
+    ("magnitude/mag/value", "mag", "magnitude units"),
+    (
+        "magnitude/mag/uncertainty",
+        "mag_uncertainty (1 sigma) or interval half-width",
+        "magnitude units",
+    ),
+    (
+        "magnitude/mag/confidenceLevel",
+        "68.27 for mag_uncertainty; 100 * confidence_level",
+        "percent",
+    ),
     ("magnitude/type", "magnitude_type", "-"),
-    ("magnitude/stationCount", "n_stations", "count"),
+    ("magnitude/stationCount", "station_count", "count"),
     ("magnitude/methodID", "method", "-"),
     ("magnitude/evaluationMode", "always 'automatic'", "-"),
     ("magnitude/evaluationStatus", "evaluation_status", "-"),
     ("magnitude/creationInfo/version", "model_version", "-"),
     ("magnitude/creationInfo/creationTime", "fused_at", "UTC"),
     ("magnitude/comment", "flags=...; run_id=...", "-"),
-    ("stationMagnitude/mag/value", "corrected_magnitude", "magnitude units"),
-    ("stationMagnitude/waveformID", "station_id (+ channel)", "-"),
-    ("stationMagnitude/comment", "station_correction, magnitude_as_read", "magnitude units"),
-    ("stationMagnitudeContribution/weight", "weight", "1"),
-    ("stationMagnitudeContribution/residual", "residual", "magnitude units"),
+    (
+        "stationMagnitude/mag/value",
+        "station magnitude as read + station correction",
+        "magnitude units",
+    ),
+    ("stationMagnitude/waveformID", "station code NET.STA.LOC (+ channel)", "-"),
+    (
+        "stationMagnitude/comment",
+        "station_correction=...; magnitude_as_read=...",
+        "magnitude units",
+    ),
+    ("stationMagnitudeContribution/weight", "normalised weight of the station magnitude", "1"),
+    (
+        "stationMagnitudeContribution/residual",
+        "corrected station magnitude - mag",
+        "magnitude units",
+    ),
 )
 
 _EVENT_COLUMNS: Final = (
@@ -612,6 +638,8 @@ def _event_object(ec: _EventColumns, rc: _RowColumns, j: int) -> tuple[Any, int]
             origin_id,
         )
     event.magnitudes.append(magnitude)
+    # the file holds magfuse's magnitudes only: the one per event is its preferred one here
+    event.preferred_magnitude_id = magnitude.resource_id
     return event, n_sm
 
 
@@ -675,6 +703,13 @@ def _add_station_magnitudes(
     return int(mine.shape[0])
 
 
+def _flag_notes() -> list[str]:
+    """Methods and flags with their meanings (the magnitude export's sidecar paragraphs)."""
+    from fusion.export.magnitudes import flag_notes  # imports this module: call time only
+
+    return flag_notes(rows=True)
+
+
 def write_quakeml(
     events: pd.DataFrame,
     contributions: pd.DataFrame,
@@ -727,11 +762,18 @@ def write_quakeml(
             ("Exported", f"{stamp(created)} by magfuse {__version__}"),
         ],
         columns=list(QUAKEML_MAPPING),
-        columns_header=("QuakeML element", "magfuse column", "unit"),
+        columns_header=("QuakeML element", "source: magnitude export column, or in words", "unit"),
         notes=[
             "Station magnitudes are corrected (as read + station correction); the correction "
             "and the value as read are in each station magnitude's comment "
-            "(station_correction=...; magnitude_as_read=...).",
+            "(station_correction=...; magnitude_as_read=...; unit_id=...; flags=...). unit_id "
+            "is the station unit whose correction was applied: a station epoch, written "
+            "NET.STA.LOC, plus @YYYY-MM-DD when the station's bias stepped and a later epoch "
+            "began on that date. flags are the station magnitude's flags (see the magnitude "
+            "export's sidecar).",
+            "The one magnitude of each event is its preferredMagnitudeID within this file; "
+            "the magnitude of record stays the publishing authority's.",
+            *_flag_notes(),
             *notes,
         ],
     )

@@ -762,7 +762,7 @@ def flag_detection_bias(
     M = ev_tab["magnitude"].to_numpy(float)
     size = expected_detection_bias(ev, w, b, s, t, M)
     flags = ev_tab["flags"].astype(str).to_numpy()
-    censored = ev_tab["method"].astype(str).to_numpy() == str(EstimateMethod.censored_ml)
+    censored = ev_tab["method"].astype(str).to_numpy() == str(EstimateMethod.censored_likelihood)
     size = np.where(censored, np.nan, size)
     hit = ~censored & (size >= min_bias)
     name = str(EventFlag.likely_biased_high)

@@ -57,12 +57,13 @@ the GLS value (docs/censoring.md §3). Their ``weight`` is then ∂M̂/∂v for 
 (magnitude, threshold or clipped bound), which again sums to 1 over the event's rows.
 
 Edge cases (docs/conventions.md item 6): an event with no usable detection (no row, only
-non-detections, or only non-finite magnitudes) gets NaN and flag ``no-detection``. Identical values
-give M̂ equal to them, χ² = 0, R_B = 0 and the model SE. A detected row with a NaN or infinite
-magnitude is handled by ``nan_policy``: ``"omit"`` drops it (row and event flag
-``invalid-magnitude``), ``"propagate"`` makes its event's magnitude NaN (same flag), ``"raise"``
-raises :class:`~stations.errors.DomainError` naming the row. Clipped detections are lower bounds:
-they never enter the GLS and count only in the censored likelihood.
+non-detections, or
+only non-finite magnitudes) gets NaN and flag ``no-usable-detection``. Identical values give M̂ equal
+to them, χ² = 0, R_B = 0 and the model SE. A detected row with a NaN or infinite magnitude is
+handled by ``nan_policy``: ``"omit"`` drops it (row and event flag ``invalid-magnitude``),
+``"propagate"`` makes its event's magnitude NaN (same flag), ``"raise"`` raises
+:class:`~stations.errors.DomainError` naming the row. Clipped detections are lower bounds: they
+never enter the GLS and count only in the censored likelihood.
 
 References
 ----------
@@ -125,16 +126,19 @@ class EstimateMethod(StrEnum):
     """How an event's network magnitude was computed."""
 
     none = "none"  #: no usable detection
-    single_station = "single_station"  #: m − b̂ of the only station
+    single_station = "single-station"  #: m − b̂ of the only station
     gls = "gls"  #: GLS without robust weights (2 stations, or fewer than robust_min_stations)
-    robust_gls = "robust_gls"  #: GLS with Student-t weights from LOSO residuals
-    censored_ml = "censored_ml"  #: maximum likelihood with non-detections / clipped readings
+    robust_gls = "robust-gls"  #: GLS with Student-t weights from LOSO residuals
+    #: maximum likelihood with non-detections / clipped readings (named so that it cannot be
+    #: read as "ML", the local magnitude; stores with the old "censored_ml" are read through
+    #: fusion.flags.upgrade_methods)
+    censored_likelihood = "censored-likelihood"
 
 
 class EventFlag(StrEnum):
     """Short names joined by ';' in the ``flags`` column of the event table."""
 
-    no_detection = "no-detection"
+    no_detection = "no-usable-detection"
     single_station = "single-station"
     inconsistent = "inconsistent"
     negative_weight = "negative-weight"
@@ -1329,7 +1333,7 @@ def _censored_step(
     out.magnitude[ok] = fit.magnitude[ok]
     out.se[ok] = np.where(est.inconsistent[ok], fit.se[ok] * np.abs(est.z_two[ok]), fit.se[ok])
     out.shift[ok] = fit.magnitude[ok] - M_gls[ok]
-    out.method[ok] = EstimateMethod.censored_ml.value
+    out.method[ok] = EstimateMethod.censored_likelihood.value
     out.n_iter[tob_ev] += fit.n_iter[tob_ev]
     out.converged[failed] = False
     out.not_converged |= failed
@@ -1371,7 +1375,7 @@ def _flags(
         (EventFlag.unknown_station, unknown_ev),
         (EventFlag.outlier, outlier_ev),
         (EventFlag.not_converged, cen.not_converged & (counts > 0)),
-        (EventFlag.censoring_used, cen.method == EstimateMethod.censored_ml.value),
+        (EventFlag.censoring_used, cen.method == EstimateMethod.censored_likelihood.value),
         (EventFlag.censoring_uncorrected, cen.uncorrected),
         (EventFlag.invalid_magnitude, invalid_ev),
     ):
@@ -1404,7 +1408,7 @@ def _warn_events(
     if np.any(no_det):
         warnings.warn(
             f"{int(no_det.sum())} of {obs.n_events} events have no usable detection; their "
-            "magnitude is NaN (flag 'no-detection')",
+            "magnitude is NaN (flag 'no-usable-detection')",
             DegenerateDataWarning,
             stacklevel=3,
         )

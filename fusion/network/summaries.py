@@ -29,7 +29,8 @@ def censoring_summary(events: pd.DataFrame) -> dict[str, Any]:
     -------
     dict
         ``n_events`` (with a magnitude), ``n_used`` (events re-estimated with non-detections
-        or clipped readings, method ``censored_ml``), ``n_nondetections`` (non-detections they
+        or clipped readings, method ``censored-likelihood``), ``n_nondetections`` (non-detections
+        they
         used), ``shift`` (n, mean, median, max_abs, n_ge_0_1 = events moved by 0.1 or more, and
         quantiles 5 / 25 / 50 / 75 / 95 % of censored − GLS magnitude, magnitude units),
         ``n_uncorrected`` (flag ``censoring-uncorrected``) and ``n_likely_biased_high``.
@@ -37,7 +38,7 @@ def censoring_summary(events: pd.DataFrame) -> dict[str, Any]:
     mag = pd.to_numeric(events["magnitude"]).to_numpy(dtype=float)
     has = np.isfinite(mag)
     method = events["method"].astype(str).to_numpy() if "method" in events else None
-    used = has & (method == "censored_ml") if method is not None else np.zeros_like(has)
+    used = has & (method == "censored-likelihood") if method is not None else np.zeros_like(has)
     flags = events["flags"].fillna("").astype(str) if "flags" in events else None
 
     def flagged(name: str) -> int:

@@ -58,6 +58,7 @@ from typing import Final
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.csv as pa_csv
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 from scipy import special
@@ -93,7 +94,7 @@ class StationFlag(StrEnum):
     residual_offset = "residual-offset"  #: |t| > 3 for the mean residual in the window
     many_outliers = "many-outliers"  #: window outlier rate above ``outlier_rate_alert``
     drift_alarm = "drift-alarm"  #: a CUSUM bias-step alarm in the unit's epoch
-    correlated = "correlated"  #: a flagged correlated partner
+    correlated = "correlated-pair"  #: a flagged correlated partner
     uncalibrated = "uncalibrated"  #: no anchor in the unit's component
     prior_dominated = "prior-dominated"  #: the prior outweighs the data (few readings)
 
@@ -103,6 +104,16 @@ class StationFlag(StrEnum):
 ATTENTION_FLAGS: Final = frozenset(StationFlag) - {StationFlag.prior_dominated}
 
 _FLAG_ORDER: Final = tuple(StationFlag)
+
+#: What each station flag means, for the sidecar of the written table.
+_FLAG_NOTE: Final = (
+    "distance-trend, magnitude-trend: residuals trend with log10 distance or with the network "
+    "magnitude (|t| > 3); residual-offset: the mean residual in the window differs from 0 "
+    "(|t| > 3); many-outliers: the window outlier rate is above the alert rate; drift-alarm: a "
+    "bias-step alarm in the unit's epoch; correlated: the unit has a flagged correlated "
+    "partner; uncalibrated: no reference station reaches the unit; prior-dominated: the prior "
+    "carries more information than the unit's few readings."
+)
 
 
 def _f(frame: pd.DataFrame, name: str, fill: float = np.nan) -> NDArray[np.float64]:
@@ -421,7 +432,12 @@ _UTC = pa.timestamp("us", tz="UTC")
 STATION_REPORT_SCHEMA: Final = pa.schema(
     [
         _fld("station_id", pa.string(), None, "FDSN NET.STA.LOC"),
-        _fld("unit_id", pa.string(), None, "model unit (station epoch)"),
+        _fld(
+            "unit_id",
+            pa.string(),
+            None,
+            "station unit (a station epoch): NET.STA.LOC, plus @YYYY-MM-DD after the first",
+        ),
         _fld("epoch_start", _UTC, "UTC", "start of the unit; null: open"),
         _fld("epoch_end", _UTC, "UTC", "end of the unit (exclusive); null: open"),
         _fld("bias", pa.float64(), _MAG, "station bias relative to the anchor"),
@@ -452,7 +468,7 @@ STATION_REPORT_SCHEMA: Final = pa.schema(
         _fld("magnitude_n", pa.int64(), None, "readings in the magnitude fit"),
         _fld("prior_dominated", pa.bool_(), None, "the prior outweighs the data"),
         _fld("uncalibrated", pa.bool_(), None, "no anchor in the unit's component"),
-        _fld("flags", pa.string(), None, "';'-joined StationFlag values"),
+        _fld("flags", pa.string(), None, "';'-joined station flags (see the notes)"),
         _fld("partners", pa.string(), None, "correlated partners with rho"),
         _fld("n_drift_alarms", pa.int64(), None, "CUSUM alarms in the epoch"),
         _fld("drift_alarms", pa.string(), None, "change -> alarm dates"),
@@ -471,7 +487,13 @@ def write_station_table(
     *,
     metadata: dict[str, str] | None = None,
 ) -> None:
-    """Write the station table as CSV (ISO 8601 UTC times) and Parquet (declared schema).
+    """Write the station table as CSV and Parquet, each with a README sidecar.
+
+    Both files follow the conventions of the exports (:mod:`fusion.export.sidecar`): CSV times
+    are ISO 8601 UTC, booleans ``true``/``false``; the Parquet file has the declared schema
+    (units and descriptions in field metadata) and the advisory caution in its key-value
+    metadata (``magfuse.advisory``); each file gets ``<file>.README.txt`` with the caution and
+    every column with its unit and description.
 
     Parameters
     ----------
@@ -482,12 +504,48 @@ def write_station_table(
     metadata : dict of str, optional
         Extra key-value metadata for the Parquet file (model version, level, window).
     """
+    from fusion.advisory import ADVISORY
+    from fusion.export.formats import ExportFormat
+    from fusion.export.sidecar import readme_text, write_readme
+    from fusion.export.tabular import csv_ready
+
     arrow = pa.Table.from_pandas(table, schema=STATION_REPORT_SCHEMA, preserve_index=False)
     meta = dict(STATION_REPORT_SCHEMA.metadata or {})
+    meta[b"magfuse.advisory"] = ADVISORY.encode()
     meta.update({k.encode(): v.encode() for k, v in (metadata or {}).items()})
     arrow = arrow.replace_schema_metadata(meta)
     pq.write_table(arrow, parquet_path)
-    text = table.copy()
-    for col in ("epoch_start", "epoch_end"):
-        text[col] = pd.to_datetime(text[col], utc=True).dt.strftime("%Y-%m-%dT%H:%M:%SZ")
-    text.to_csv(csv_path, index=False, na_rep="")
+    # Arrow's CSV writer: booleans true/false and quoting as in every export
+    pa_csv.write_csv(
+        csv_ready(arrow),
+        csv_path,
+        write_options=pa_csv.WriteOptions(include_header=True, quoting_style="needed"),
+    )
+    columns = [
+        (
+            f.name,
+            (f.metadata or {}).get(b"unit", b"-").decode(),
+            (f.metadata or {}).get(b"doc", b"").decode(),
+        )
+        for f in STATION_REPORT_SCHEMA
+    ]
+    facts = [
+        (k.removeprefix("magfuse.").replace("_", " ").capitalize(), v or "-")
+        for k, v in (metadata or {}).items()
+    ]
+    for path, fmt in ((csv_path, ExportFormat.csv), (parquet_path, ExportFormat.parquet)):
+        text = readme_text(
+            title="station reliability table",
+            data_name=Path(path).name,
+            fmt=fmt,
+            rows=arrow.num_rows,
+            provenance=facts,
+            columns=columns,
+            notes=[
+                "One row per station unit: a station epoch, i.e. a station (NET.STA.LOC) over "
+                "the time span in which its bias stayed the same; a station whose bias stepped "
+                "has one unit per epoch (unit_id NET.STA.LOC@YYYY-MM-DD after the first).",
+                f"Station flags ({', '.join(StationFlag)}): {_FLAG_NOTE}",
+            ],
+        )
+        write_readme(Path(path), text)

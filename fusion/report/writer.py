@@ -830,12 +830,12 @@ def _pair_rows(pairs: pd.DataFrame, order: NDArray[np.int64]) -> str:
     flagged = as_bool(pairs["flagged"], "pairs", "flagged")[order]
     return table(
         [
-            ("station k", text("station_k"), True),
-            ("station l", text("station_l"), True),
+            ("station 1", text("station_k"), True),
+            ("station 2", text("station_l"), True),
             ("shared events", num("n_shared", ".0f"), False),
-            ("ρ̂", num("rho_hat", "+.2f"), False),
-            ("ρ interval", np.where(lo != "", "[" + lo + ", " + hi + "]", ""), False),
-            ("T", num("statistic", "+.2f"), False),
+            ("error correlation", num("rho_hat", "+.2f"), False),
+            ("95 % interval", np.where(lo != "", "[" + lo + ", " + hi + "]", ""), False),
+            ("test statistic", num("statistic", "+.2f"), False),
             ("p", num("p_value", ".2g"), False),
             ("q", num("q_value", ".2g"), False),
             ("flagged", np.where(flagged, "yes", ""), True),
@@ -935,6 +935,9 @@ def _notes(
 ) -> str:
     pct = interval_name(level)
     items = [
+        "Unit: a station epoch, i.e. a station over a span of time in which its bias stayed the "
+        "same. A station whose bias stepped has one unit per epoch; its unit id is the station "
+        "code for the first epoch and station code@YYYY-MM-DD for an epoch that began that day.",
         "Bias b̂ is the station's offset from the network, relative to the anchor; a station "
         "correction is −b̂. Its interval (the same level as every interval in magfuse, "
         f"[network] confidence_level) is the {pct} b̂ ± z·SE, z the normal quantile.",

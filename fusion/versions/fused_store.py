@@ -571,6 +571,17 @@ def _write_parquet(
 # ---------------------------------------------------------------------------------------------
 
 
+def _upgrade_names(table: pa.Table) -> pa.Table:
+    """Method and flag names written by earlier versions, read as today's (fusion.flags)."""
+    from fusion.flags import upgrade_flags, upgrade_methods
+
+    for name, upgrade in (("method", upgrade_methods), ("flags", upgrade_flags)):
+        if name in table.column_names:
+            i = table.column_names.index(name)
+            table = table.set_column(i, table.schema.field(i), upgrade(table.column(i)))
+    return table
+
+
 class FusedStore:
     """Fused network magnitudes of one store (layout and rules: module docstring).
 
@@ -762,7 +773,7 @@ class FusedStore:
         ]
         if not parts:
             return pa.schema([FUSED_EVENTS_SCHEMA.field(c) for c in cols]).empty_table()
-        return pa.concat_tables(parts)
+        return _upgrade_names(pa.concat_tables(parts))
 
     @staticmethod
     def _latest(table: pa.Table) -> pa.Table:
@@ -955,7 +966,7 @@ class FusedStore:
         # Group by the order of ``rows``, keep the run's own row order inside (stable sort).
         key = pa.table({"p": pa.array(p_int[match]), "s": table.column("run_seq")})
         order = pc.sort_indices(key, [("p", "ascending"), ("s", "ascending")])
-        return table.take(order)
+        return _upgrade_names(table.take(order))
 
     def _final_ids(self, m: _Manifest, mtype: str) -> pa.Array:
         t = self._events_table(

@@ -14,6 +14,7 @@ median error), and the offset itself is printed.
 
 from __future__ import annotations
 
+import shlex
 import shutil
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -26,8 +27,9 @@ import pandas as pd
 
 from fusion.advisory import ADVISORY
 from fusion.model.parameters import StationParameters
+from fusion.wording import count, number
 
-__all__ = ["DemoResult", "oracle_parameters", "run_demo", "score_against_truth"]
+__all__ = ["DemoResult", "next_commands", "oracle_parameters", "run_demo", "score_against_truth"]
 
 #: First and second half of the demo year.
 SPLIT = "2025-07-01T00:00:00Z"
@@ -43,6 +45,29 @@ class DemoResult:
     first_version: str
     second_version: str
     explained_event: str
+
+
+def _quarantined(n: int) -> str:
+    return f"{number(n)} quarantined"
+
+
+def next_commands(store_dir: Path, event_id: str) -> list[str]:
+    """What to try next on the demo's store, as lines to print (every command with --store).
+
+    The demo writes its own store (``<workdir>/store``), not the default one of the
+    configuration, so each command names it.
+    """
+    where = shlex.quote(str(store_dir))
+    tries = (
+        ("store", "what the store holds"),
+        ("models", "the two model versions; the active one is marked *"),
+        (f"event {shlex.quote(event_id)}", "the event explained above"),
+        ("export magnitudes --format quakeml --out demo.xml", "the network magnitudes"),
+        ("report --out demo-report", "the station report again"),
+    )
+    lines = [f"the demo's store is {store_dir}; try on it:"]
+    lines += [f"  magfuse {cmd} --store {where}    # {what}" for cmd, what in tries]
+    return lines
 
 
 def oracle_parameters() -> StationParameters:
@@ -201,7 +226,7 @@ def run_demo(workdir: Path, *, echo: Callable[[str], None] = print) -> DemoResul
     step("1. first half-year arrives: ingest")
     out = ingest_file(store, first)
     r = out.report
-    echo(f"{first.name}: {r.accepted:,} readings stored, {r.quarantined} quarantined")
+    echo(f"{first.name}: {count(r.accepted, 'reading')} stored, " + _quarantined(r.quarantined))
 
     step("2. learn station biases, error SDs and correlated pairs (no ground truth); adopt")
     v1 = learn_candidate(store, registry, cfg, now=datetime.now(UTC)).version
@@ -213,7 +238,7 @@ def run_demo(workdir: Path, *, echo: Callable[[str], None] = print) -> DemoResul
 
     step("3. second half-year arrives: ingest, learn a candidate, dry run before adopting")
     r = ingest_file(store, second).report
-    echo(f"{second.name}: {r.accepted:,} readings stored, {r.quarantined} quarantined")
+    echo(f"{second.name}: {count(r.accepted, 'reading')} stored, " + _quarantined(r.quarantined))
     v2 = learn_candidate(store, registry, cfg, now=datetime.now(UTC)).version
     _echo_model(echo, v2.meta)
     dr = dry_run(store, registry, cfg, magnitude_type="ML", candidate=v2.version_id, top=5)
@@ -256,6 +281,8 @@ def run_demo(workdir: Path, *, echo: Callable[[str], None] = print) -> DemoResul
     echo(f"report   {files.html}")
     echo(f"tables   {files.station_csv}")
     echo("")
+    echo("\n".join(next_commands(store.root, event_id)))
+    echo("")
     echo(ADVISORY)
     return DemoResult(
         store=store.root,
@@ -270,9 +297,10 @@ def run_demo(workdir: Path, *, echo: Callable[[str], None] = print) -> DemoResul
 def _echo_model(echo: Callable[[str], None], m: dict[str, Any] | Any) -> None:
     anchor = m.get("anchor") or {}
     echo(
-        f"model {m['version']}: {m['n_events']:,} events, {m['n_stations']} stations "
-        f"({m['n_units']} station epochs), {m['n_pairs_flagged']} correlated pairs, "
-        f"{m['n_epoch_splits']} bias steps; anchor {anchor.get('kind')} "
+        f"model {m['version']}: {count(m['n_events'], 'event')}, "
+        f"{count(m['n_stations'], 'station')} ({count(m['n_units'], 'station epoch')}), "
+        f"{count(m['n_pairs_flagged'], 'correlated pair')}, "
+        f"{count(m['n_epoch_splits'], 'bias step')}; anchor {anchor.get('kind')} "
         f"(calibration uncertainty {anchor.get('se', float('nan')):.3f})"
     )
 
@@ -288,7 +316,7 @@ def _render_scores(scores: pd.DataFrame, level: float) -> str:
     for r in scores.to_dict(orient="records"):
         cov = "" if not np.isfinite(r["coverage"]) else f"{r['coverage']:.3f}"
         lines.append(
-            f"{r['method']:<11} {r['n']:>6} {r['rmse']:7.3f} {r['rmse_raw']:9.3f} "
+            f"{r['method']:<11} {number(r['n']):>6} {r['rmse']:7.3f} {r['rmse_raw']:9.3f} "
             f"{r['offset']:+7.3f} {cov}"
         )
     rmse = {str(r["method"]): float(r["rmse"]) for r in scores.to_dict(orient="records")}

@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from fusion.network.summaries import censoring_summary
+from fusion.wording import count
 from fusion.workflows.fusing import fuse_with_version, resolve_version
 from fusion.workflows.learning import _latest_origin, load_window
 from stations.errors import ModelNotFoundError
@@ -180,7 +181,8 @@ class DryRunReport:
                 f"{_num(r['sigma_change']):>8}  " + " ".join(flags)
             )
         if len(self.stations) > max_stations:
-            lines.append(f"... {len(self.stations) - max_stations} more stations (--json)")
+            more = count(len(self.stations) - max_stations, "more station")
+            lines.append(f"... {more} (--json)")
         lines += _censoring_lines(self.censoring)
         if len(self.top_events):
             lines += ["", "events that would move most:"]
@@ -203,8 +205,8 @@ def _censoring_lines(cens: dict[str, Any]) -> list[str]:
         if not c:
             continue
         text = (
-            f"  {label:<7} {c['n_used']:,} of {c['n_events']:,} events used "
-            f"{c['n_nondetections']:,} non-detections"
+            f"  {label:<7} {c['n_used']:,} of {count(c['n_events'], 'event')} used "
+            f"{count(c['n_nondetections'], 'non-detection')}"
         )
         sh = c["shift"]
         if "median" in sh:

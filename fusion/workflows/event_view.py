@@ -29,6 +29,7 @@ import numpy as np
 
 from fusion.advisory import ADVISORY
 from fusion.network.network_magnitude import interval_name
+from fusion.wording import count
 from stations.errors import ConfigError, EventNotFoundError
 
 if TYPE_CHECKING:
@@ -333,9 +334,9 @@ def render_event(ex: EventExplanation) -> str:
         f"({ev.get('max_influence_station') or '-'})",
         f"method             {est.method}"
         + (
-            f", {int(ev.get('n_nondetections_used', 0))} non-detections used, "
+            f", {count(int(ev.get('n_nondetections_used', 0)), 'non-detection')} used, "
             f"shift {_f(ev.get('censoring_shift'), '+.3f')}"
-            if ev.get("n_nondetections_used") or est.method == "censored_ml"
+            if ev.get("n_nondetections_used") or est.method == "censored-likelihood"
             else ""
         ),
         f"flags              {', '.join(est.flags) or '-'}" + _detection_bias_note(ev),
@@ -344,16 +345,16 @@ def render_event(ex: EventExplanation) -> str:
         lines.append(_SINGLE_NOTE)
     lines += [
         "",
-        f"influence = {CONVENTIONS['influence']}; corrected = mag + corr "
-        "(non-detection: noise threshold + corr)",
-        f"{'station':<16} {'mag':>5} {'corr':>6} {'corrected':>9} {'weight':>7} "
+        f"influence = {CONVENTIONS['influence']}; corrected = mag + correction "
+        "(non-detection: noise threshold + correction)",
+        f"{'station':<16} {'mag':>5} {'correction':>10} {'corrected':>9} {'weight':>7} "
         f"{'residual':>8} {'influence':>9} {'z':>6}  flags",
     ]
     rows = sorted(est.contributions, key=lambda c: (not c.detected, -abs(c.weight)))
     for c in rows:
         if c.detected:
             lines.append(
-                f"{c.station_id:<16} {_f(c.magnitude):>5} {_f(c.correction, '+.2f'):>6} "
+                f"{c.station_id:<16} {_f(c.magnitude):>5} {_f(c.correction, '+.2f'):>10} "
                 f"{_f(c.corrected_magnitude):>9} {_f(c.weight, '.3f'):>7} "
                 f"{_f(c.residual, '+.3f'):>8} {_f(c.influence, '+.3f'):>9} {_f(c.z, '+.2f'):>6}  "
                 f"{', '.join(c.flags)}"
@@ -361,7 +362,7 @@ def render_event(ex: EventExplanation) -> str:
         else:
             corrected = c.threshold + c.correction
             lines.append(
-                f"{c.station_id:<16} {'-':>5} {_f(c.correction, '+.2f'):>6} "
+                f"{c.station_id:<16} {'-':>5} {_f(c.correction, '+.2f'):>10} "
                 f"{'< ' + _f(corrected):>9} {_f(c.weight, '.3f'):>7} {'':>8} {'':>9} "
                 f"{'':>6}  not detected (noise threshold {_f(c.threshold)})"
             )

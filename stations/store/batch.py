@@ -32,6 +32,7 @@ from stations.schema import (
     RECORD_SCHEMA,
     VALUE_COLUMNS,
     MagnitudeType,
+    accepted_types_text,
 )
 from stations.store.keys import row_codes, rows_equal
 from stations.store.reading import FILE_NO, ROW, position_keys
@@ -181,7 +182,7 @@ def screen(table: pa.Table) -> tuple[pa.Table, pa.Table]:
         reasons[bad] = (
             "magnitude type '"
             + values.astype(object)
-            + f"' is unknown; use one of {', '.join(_TYPES)}"
+            + f"' is unknown; use one of {accepted_types_text()}"
         )
     for name in reversed(_REQUIRED):  # the first missing column wins
         null = table.column(name).is_null().to_numpy(zero_copy_only=False)

@@ -13,16 +13,21 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from typer.testing import Result
 
 import sample_events
 from fusion.advisory import ADVISORY
 from tests.cli.conftest import VERSION_RE, invoke
 
 _ROW = re.compile(
-    r"(fused|plain mean|median|oracle)\s+(\d+)\s+(\d+\.\d{3})\s+(\d+\.\d{3})\s+"
+    r"(fused|plain mean|median|oracle)\s+([\d,]+)\s+(\d+\.\d{3})\s+(\d+\.\d{3})\s+"
     r"([+-]\d+\.\d{3})(?: (\d\.\d{3}))?"
 )
 
+
+#: A number of four or more digits not written with thousands separators (dates, times, ids
+#: and version ids excluded by their neighbouring characters).
+_BARE_COUNT = re.compile(r"(?<![\w.:/,~+-])\d{4,}(?![\w.:/,-])")
 
 #: Words of the score table's header line.
 HEADER = [
@@ -51,14 +56,24 @@ def _scores(lines: list[str]) -> dict[str, tuple[int, float]]:
     for line in lines[head + 2 : head + 6]:
         m = _ROW.fullmatch(line.rstrip())
         assert m is not None, line
-        out[m[1]] = (int(m[2]), float(m[3]))
+        out[m[1]] = (int(m[2].replace(",", "")), float(m[3]))
     return out
 
 
-@pytest.mark.slow
-def test_demo_beats_the_plain_mean_and_nearly_matches_the_oracle(tmp_path: Path) -> None:
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory: pytest.TempPathFactory) -> tuple[Result, Path]:
+    """One ``magfuse demo`` run (about a minute) and its work folder."""
+    tmp_path = tmp_path_factory.mktemp("demo-run")
     res = invoke("demo", "--workdir", tmp_path / "demo")
     assert res.exit_code == 0, res.stdout + res.stderr
+    return res, tmp_path
+
+
+@pytest.mark.slow
+def test_demo_beats_the_plain_mean_and_nearly_matches_the_oracle(
+    demo: tuple[Result, Path],
+) -> None:
+    res, tmp_path = demo
     lines = res.stdout.splitlines()
     steps = [line for line in lines if line.startswith("== ")]
     assert [s[:5] for s in steps] == ["== 1.", "== 2.", "== 3.", "== 4.", "== 5.", "== 6."]
@@ -87,3 +102,36 @@ def test_demo_beats_the_plain_mean_and_nearly_matches_the_oracle(tmp_path: Path)
     (adopted,) = re.findall(rf"the demo adopts ({VERSION_RE}) by hand", res.stdout)
     models = invoke("models", "--store", tmp_path / "demo" / "store")
     assert f"* {adopted}" in models.stdout
+
+
+@pytest.mark.slow
+def test_demo_prints_its_store_and_next_commands_that_work_on_it(
+    demo: tuple[Result, Path],
+) -> None:
+    """After the demo, 'magfuse store' without --store looks at the default store; the demo
+    says where its own store is and prints commands that work on it as printed."""
+    res, tmp_path = demo
+    lines = res.stdout.splitlines()
+    store = tmp_path / "demo" / "store"
+    assert f"the demo's store is {store}; try on it:" in lines
+    tries = [line.split("#")[0].split() for line in lines if line.startswith("  magfuse ")]
+    assert [t[1] for t in tries] == ["store", "models", "event", "export", "report"]
+    for words in tries[:3]:  # the quick ones, exactly as printed (the path needs no quoting)
+        assert words[-2:] == ["--store", str(store)]
+        out = invoke(*words[1:])
+        assert out.exit_code == 0, out.stderr
+        assert "no store" not in out.stdout + out.stderr
+        # human text: counts from 1,000 up with thousands separators (models: 2,369 events)
+        assert _BARE_COUNT.findall(out.stdout) == [], (words[1], out.stdout)
+
+
+@pytest.mark.slow
+def test_demo_counts_read_as_english(demo: tuple[Result, Path]) -> None:
+    """Plurals agree with their count ('1 bias step') and counts from 1,000 up carry
+    thousands separators, in the demo's text as in the other commands' text."""
+    res, _ = demo
+    text = res.stdout
+    assert not re.search(r"(?<![\d,.])1 (bias steps|events|stations|correlated pairs)\b", text)
+    bare = _BARE_COUNT.findall(text)
+    assert bare == [], bare
+    assert re.search(r"\b2,390\b", text)  # the demo's 2,390 events in the score table

@@ -150,14 +150,16 @@ def test_ingest_the_yellowstone_table(tmp_path: Path) -> None:
     res = runner.invoke(app, ["ingest", str(YELLOWSTONE), "--store", str(store)])
     assert res.exit_code == 0, res.stderr
     m = re.fullmatch(
-        rf"{re.escape(str(YELLOWSTONE))}: (\d+) accepted \(0 revised\), 0 duplicate, "
-        rf"(\d+) quarantined; batch {BATCH}\n",
+        rf"{re.escape(str(YELLOWSTONE))}: ([\d,]+) accepted \(0 revised\), 0 duplicate, "
+        rf"([\d,]+) quarantined; batch {BATCH}\n",
         res.stdout,
     )
     assert m is not None, res.stdout
-    assert int(m[1]) + int(m[2]) == 7728
+    accepted, quarantined = (int(g.replace(",", "")) for g in (m[1], m[2]))
+    assert accepted + quarantined == 7728
+    assert accepted >= 1000 and f"{accepted:,}" == m[1]  # human text: thousands separators
     doc = json.loads(runner.invoke(app, ["store", "--json", "--store", str(store)]).stdout)
-    assert doc["rows_current"] == int(m[1]) and doc["quarantined"] == int(m[2])
+    assert doc["rows_current"] == accepted and doc["quarantined"] == quarantined
     assert doc["stations"] == 20
 
 

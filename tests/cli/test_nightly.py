@@ -253,7 +253,7 @@ def test_policy_decides_adoption_and_final_magnitudes_never_change(
     recent = cur[(cur["origin_time"] >= last - timedelta(days=7)) & (cur["n_stations"] >= 4)]
     final_id, open_id = (str(e) for e in recent["event_id"].iloc[:2])
     res = invoke("finalize", final_id, "--store", root)
-    assert (res.exit_code, res.stdout) == (0, "ML: 1 network magnitudes marked final\n")
+    assert (res.exit_code, res.stdout) == (0, "ML: 1 network magnitude marked final\n")
     frozen = fused.current("ML", event_ids=[final_id])
     assert frozen["evaluation_status"].tolist() == ["final"]
     history = len(fused.history(final_id))

@@ -230,7 +230,7 @@ def test_event_explains_the_stored_network_magnitude(learned_store: LearnedStore
     ls = learned_store
     fs = FusedStore(ls.root)
     cur = fs.current("ML")
-    gls = cur[cur["method"].isin(["gls", "robust_gls"])]
+    gls = cur[cur["method"].isin(["gls", "robust-gls"])]
     row = gls.iloc[int(np.argmax(gls["n_stations"].to_numpy()))]
     eid = str(row["event_id"])
     js = invoke("event", eid, "--json", "--store", ls.root, "--config", ls.config)

@@ -35,7 +35,9 @@ from fusion.export import (
     write_magnitudes,
     write_quakeml,
 )
+from fusion.export.model_tables import INTERNAL_COLUMNS
 from fusion.export.quakeml import (
+    QUAKEML_MAPPING,
     SE_CONFIDENCE_PERCENT,
     comment_fields,
     event_id_from_resource_id,
@@ -144,8 +146,11 @@ def test_module_docstring_documents_every_column_with_its_unit() -> None:
 def test_model_table_specs_cover_the_learner_tables() -> None:
     """Drift guard: every column the learner writes has a declared type, unit and doc."""
     assert set(STATION_TABLE_COLUMNS) == set(MODEL_TABLE_COLUMNS["stations"])
-    assert set(TABLE_COLUMNS) == set(MODEL_TABLE_COLUMNS["pairs"])
-    assert set(STEP_COLUMNS) == set(MODEL_TABLE_COLUMNS["epochs"])
+    assert set(TABLE_COLUMNS) == set(MODEL_TABLE_COLUMNS["pairs"]) | INTERNAL_COLUMNS["pairs"]
+    # the learner adds unit_id to its step table (fusion.model.station_model._station_steps)
+    assert set(STEP_COLUMNS) | {"unit_id"} == (
+        set(MODEL_TABLE_COLUMNS["epochs"]) | INTERNAL_COLUMNS["epochs"]
+    )
 
 
 # -- magnitudes: CSV and Parquet ---------------------------------------------------------------
@@ -254,19 +259,23 @@ def test_model_tables_round_trip(tmp_path: Path, chain: Chain, name: str, fmt: s
         if fmt == "csv"
         else pq.read_table(out).to_pandas()
     )
-    assert list(back.columns) == list(frame.columns)
-    for col in frame.columns:
+    specs = MODEL_TABLE_COLUMNS[name]
+    kept = [c for c in frame.columns if c not in INTERNAL_COLUMNS.get(name, ())]
+    assert set(back.columns) >= {specs[c].name for c in kept}
+    for col in kept:
+        got = back[specs[col].name]
         if frame[col].dtype.kind == "f":
-            np.testing.assert_array_equal(back[col].to_numpy(float), frame[col].to_numpy(float))
+            np.testing.assert_array_equal(got.to_numpy(float), frame[col].to_numpy(float))
         elif frame[col].dtype.kind in "ib":
-            assert list(back[col]) == list(frame[col])
+            assert list(got) == list(frame[col])
     readme = readme_path(out).read_text(encoding="utf-8")
     assert ADVISORY in readme and version.version_id in readme
     if fmt == "parquet":
         schema = pq.read_schema(out)
         assert schema.metadata[b"magfuse.advisory"].decode() == ADVISORY
-        for col, spec in MODEL_TABLE_COLUMNS[name].items():
-            assert schema.field(col).metadata[b"unit"].decode() == spec.unit
+        for col in kept:
+            spec = specs[col]
+            assert schema.field(spec.name).metadata[b"unit"].decode() == spec.unit
 
 
 def test_model_table_columns_and_errors(tmp_path: Path, chain: Chain) -> None:
@@ -281,6 +290,79 @@ def test_model_table_columns_and_errors(tmp_path: Path, chain: Chain) -> None:
         model_table(frame.assign(bad=[{"a": 1}] * len(frame)), "stations")
     with pytest.raises(UnknownFormatError, match="choose csv, parquet"):
         export_model_table(registry, version, "stations", tmp_path / "s.xml", format="quakeml")
+
+
+_DESIGN_SYMBOLS = ("T_self", "T_model", "c_hat", "rho_hat", "safe-cells", "undocumented")
+
+
+@pytest.mark.parametrize("name", ["stations", "pairs", "epochs"])
+def test_model_table_exports_describe_every_column_without_internal_codes(
+    tmp_path: Path, chain: Chain, name: str
+) -> None:
+    """The sidecar describes every column the file has; no integer row codes (station, k, l)
+    and no design-document symbols reach the file or its sidecar."""
+    _, registry, version, _ = chain
+    out = tmp_path / f"{name}.csv"
+    report = export_model_table(registry, version, name, out, format="csv", now=NOW)
+    header = out.read_text(encoding="utf-8").splitlines()[0].replace('"', "").split(",")
+    readme = readme_path(out).read_text(encoding="utf-8")
+    assert report.notes == ()
+    assert not {"station", "k", "l"} & set(header)
+    for col in header:
+        row = re.search(rf"^{col}\s+\S+\s+(.+)$", readme, re.M)
+        assert row is not None and row[1].strip(), col
+    for symbol in _DESIGN_SYMBOLS:
+        assert symbol not in readme and symbol not in header, symbol
+    if name != "pairs":
+        assert "station epoch" in readme  # what a unit is, said where unit ids appear
+    else:  # status values in the one style of every name magfuse writes (fusion.flags)
+        status = pd.read_csv(out, keep_default_na=False)["status"]
+        assert status.str.fullmatch(r"[a-z]+(-[a-z]+)*").all(), set(status)
+
+
+def test_epochs_export_names_the_unit_after_the_step(tmp_path: Path) -> None:
+    """unit_before is the epoch whose readings alarmed, unit_after the station-table unit that
+    starts at change_time."""
+    steps = pd.DataFrame(
+        {
+            "station_id": ["ZZ.S01.", "ZZ.S02."],
+            "station": [0, 1],
+            "change_time": pd.to_datetime(["2025-05-26T07:35:50Z", "2025-06-01T00:00:00Z"]),
+            "alarm_time": pd.to_datetime(["2025-05-28T00:00:00Z", "2025-06-03T00:00:00Z"]),
+            "direction": [1, -1],
+            "n_before": [10, 20],
+            "n_after": [30, 40],
+            "peak": [8.0, 9.0],
+            "shift_z": [0.5, -0.5],
+            "unit_id": ["ZZ.S01.", "ZZ.S02."],
+        }
+    )
+    stations = pd.DataFrame(
+        {
+            "unit_id": ["ZZ.S01.", "ZZ.S01.@2025-05-26", "ZZ.S02."],
+            "station_id": ["ZZ.S01.", "ZZ.S01.", "ZZ.S02."],
+            "epoch_start": pd.to_datetime([None, "2025-05-26T07:35:50Z", None]),
+        }
+    )
+    table = model_table(steps, "epochs", stations=stations).to_pandas()
+    assert list(table["unit_before"]) == ["ZZ.S01.", "ZZ.S02."]
+    assert table["unit_after"].iloc[0] == "ZZ.S01.@2025-05-26"
+    assert pd.isna(table["unit_after"].iloc[1])  # the model has no epoch starting there
+    assert "station" not in table.columns
+
+
+def test_magnitude_sidecar_explains_every_method_and_flag(tmp_path: Path, chain: Chain) -> None:
+    from fusion.flags import EVENT_FLAGS, METHODS, ROW_FLAGS
+
+    store, _, _, readings = chain
+    csv, xml = tmp_path / "m.csv", tmp_path / "m.xml"
+    export_magnitudes(store, "ML", csv, now=NOW)
+    export_magnitudes(store, "ML", xml, format="quakeml", readings=readings, now=NOW)
+    for path, tables in ((csv, (METHODS, EVENT_FLAGS)), (xml, (METHODS, EVENT_FLAGS, ROW_FLAGS))):
+        readme = readme_path(path).read_text(encoding="utf-8")
+        for table in tables:
+            for name, meaning in table.items():
+                assert re.search(rf"^  {re.escape(name)} +{re.escape(meaning)}$", readme, re.M)
 
 
 # -- QuakeML ------------------------------------------------------------------------------------
@@ -315,7 +397,6 @@ def test_quakeml_is_schema_valid_and_round_trips(tmp_path: Path, chain: Chain) -
         assert (mag.evaluation_mode, mag.evaluation_status) == ("automatic", "preliminary")
         assert mag.creation_info.version == version.version_id
         assert mag.creation_info.creation_time == obspy.UTCDateTime(NOW)
-        assert qe.preferred_magnitude_id is None  # advisory: not the magnitude of record
         (origin,) = qe.origins
         assert origin.time == obspy.UTCDateTime(ev.origin_time.to_pydatetime())
         assert str(mag.origin_id) == str(origin.resource_id) == str(qe.preferred_origin_id)
@@ -334,9 +415,41 @@ def test_quakeml_is_schema_valid_and_round_trips(tmp_path: Path, chain: Chain) -
             assert str(sm.origin_id) == str(origin.resource_id)
             # QuakeML's relation, from the file alone: residual = station mag - network mag
             assert c.residual == pytest.approx(sm.mag - mag.mag, abs=1e-12)
-        if ev.method in ("gls", "robust_gls", "single_station"):
+        if ev.method in ("gls", "robust-gls", "single-station"):
             total = sum(c.weight * sms[str(c.station_magnitude_id)].mag for c in contribs)
             assert total == pytest.approx(mag.mag, abs=1e-9)  # weights are normalised GLS
+
+
+def test_quakeml_preferred_magnitude_is_the_fused_one(tmp_path: Path, chain: Chain) -> None:
+    """obspy's Event.preferred_magnitude() finds the network magnitude of every event."""
+    store, _, _, readings = chain
+    out = tmp_path / "ml.xml"
+    export_magnitudes(store, "ML", out, format="quakeml", readings=readings, now=NOW)
+    cat = obspy.read_events(str(out))
+    assert len(cat) > 0
+    for ev in cat:
+        (mag,) = ev.magnitudes
+        assert ev.preferred_magnitude() is not None
+        assert ev.preferred_magnitude().resource_id == mag.resource_id
+
+
+def test_quakeml_sidecar_names_only_columns_the_magnitude_export_has(
+    tmp_path: Path, chain: Chain
+) -> None:
+    """Every bare column name in the sidecar's mapping is a column of the CSV/Parquet export."""
+    store, _, _, readings = chain
+    out = tmp_path / "ml.xml"
+    export_magnitudes(store, "ML", out, format="quakeml", readings=readings, now=NOW)
+    readme = readme_path(out).read_text(encoding="utf-8")
+    exported = {c.name for c in MAGNITUDE_COLUMNS}
+    named = set()
+    for element, source, _unit in QUAKEML_MAPPING:
+        assert element in readme
+        named |= {w for w in re.split(r"[ ,;()]+", source) if re.fullmatch(r"[a-z]+_[a-z_]+", w)}
+        if re.fullmatch(r"[a-z_]+", source):
+            named.add(source)
+    named -= {"station_correction", "magnitude_as_read"}  # keys of the comment, see its notes
+    assert named and named <= exported, sorted(named - exported)
 
 
 def test_quakeml_leaves_out_nondetections_and_events_without_magnitude(
@@ -346,7 +459,7 @@ def test_quakeml_leaves_out_nondetections_and_events_without_magnitude(
     rows = censored.store.current_contributions("ML", cur)
     assert (~rows["detected"]).sum() > 100
     gone = cur["event_id"].iloc[0]
-    cur.loc[cur.index[0], "magnitude"] = np.nan  # as for a 'no-detection' event
+    cur.loc[cur.index[0], "magnitude"] = np.nan  # as for a 'no-usable-detection' event
     report = write_quakeml(cur, rows, tmp_path / "c.xml", readings=censored.readings, now=NOW)
     assert (report.rows, report.skipped) == (len(cur) - 1, 1)
     assert _xsd_errors(tmp_path / "c.xml") == []

@@ -524,7 +524,7 @@ def test_censoring_summary_counts_and_quantiles() -> None:
             obs, _params(obs, cf.bias, cf.bias_var, cf.sigma2), use_nondetections=True
         ).events
     s = censoring_summary(ev)
-    used = (ev["method"] == "censored_ml").to_numpy()
+    used = (ev["method"] == "censored-likelihood").to_numpy()
     assert s["n_used"] == int(used.sum()) > 1000
     assert s["n_nondetections"] == int(ev["n_nondetections_used"].sum())
     shift = ev["censoring_shift"].to_numpy()[used]

@@ -336,7 +336,7 @@ def test_flag_detection_bias_marks_small_detected_only_events() -> None:
         == plain.events["flags"].str.contains("censoring-uncorrected")
     ).all()
     out = flag_detection_bias(cens, obs, params, cur).events
-    used = (out["method"] == "censored_ml").to_numpy()
+    used = (out["method"] == "censored-likelihood").to_numpy()
     assert np.all(np.isnan(out["expected_detection_bias"].to_numpy()[used]))
     assert not out["flags"][used].str.contains(str(EventFlag.likely_biased_high)).any()
     with pytest.raises(ConfigError, match="'min_bias'"):

@@ -274,7 +274,7 @@ def test_e5_through_fuse_events() -> None:
     assert ev["se"] == pytest.approx(float(ref.E5_SE), abs=E_TOL)
     assert ev["n_nondetections_used"] == 2
     assert ev["censoring_shift"] == pytest.approx(float(ref.E5_MAGNITUDE) - 2.1, abs=E_TOL)
-    assert ev["method"] == EstimateMethod.censored_ml
+    assert ev["method"] == EstimateMethod.censored_likelihood
     assert "censoring-used" in ev["flags"]
     soft = fuse_events(obs, params, use_nondetections=True, soft_threshold_sd=ref.E5_SOFT_SD)
     assert soft.events["magnitude"].iloc[0] == pytest.approx(
@@ -692,7 +692,7 @@ def test_event_without_rows_and_event_with_only_nondetections() -> None:
     ev = fused.events
     assert ev["n_stations"].tolist() == [2, 0, 0]
     assert np.isnan(ev["magnitude"].iloc[1]) and np.isnan(ev["magnitude"].iloc[2])
-    assert ev["flags"].iloc[1] == ev["flags"].iloc[2] == "no-detection"
+    assert ev["flags"].iloc[1] == ev["flags"].iloc[2] == "no-usable-detection"
     assert ev["method"].iloc[1] == EstimateMethod.none
     assert fused.event("b").contributions == ()
     assert np.isnan(fused.event("c").magnitude)

@@ -4,6 +4,7 @@ flagged, files through the declared schema, bad input refused with a one-line me
 from __future__ import annotations
 
 import dataclasses
+import re
 
 import numpy as np
 import pandas as pd
@@ -127,7 +128,7 @@ def test_planted_problems_are_flagged(table) -> None:  # type: ignore[no-untyped
     partners = table.set_index("station_id")["partners"]
     for k, l in (("ZZ.S000.", "ZZ.S001."), ("ZZ.S002.", "ZZ.S003."), ("ZZ.S004.", "ZZ.S005.")):
         assert partners[k].startswith(l) and partners[l].startswith(k)
-        assert "correlated" in _flags(table, k)
+        assert "correlated-pair" in _flags(table, k)
 
 
 def test_clean_stations_are_rarely_flagged(table) -> None:  # type: ignore[no-untyped-def]
@@ -198,6 +199,27 @@ def test_files_follow_the_declared_schema_and_round_trip(table, tmp_path) -> Non
     text = pd.read_csv(csv, keep_default_na=False, na_values=[""])
     np.testing.assert_allclose(text["sigma"], table["sigma"], rtol=1e-12)
     assert list(text.columns) == STATION_REPORT_SCHEMA.names
+
+
+def test_report_table_files_carry_the_advisory_a_sidecar_and_lowercase_booleans(
+    table, tmp_path
+) -> None:  # type: ignore[no-untyped-def]
+    """Like every export: README sidecar with the advisory and every column, Parquet metadata
+    with the advisory, CSV booleans written true/false."""
+    from fusion.advisory import ADVISORY
+    from fusion.export.sidecar import readme_path
+
+    csv, parquet = tmp_path / "s.csv", tmp_path / "s.parquet"
+    write_station_table(table, csv, parquet, metadata={"magfuse.model_version": "v1"})
+    assert pq.read_schema(parquet).metadata[b"magfuse.advisory"].decode() == ADVISORY
+    for path in (csv, parquet):
+        readme = readme_path(path).read_text(encoding="utf-8")
+        assert ADVISORY in readme and "v1" in readme
+        for name in STATION_REPORT_SCHEMA.names:
+            assert re.search(rf"^{name}\s", readme, re.M), name
+    raw = pd.read_csv(csv, dtype=str, keep_default_na=False)
+    assert set(raw["prior_dominated"]) | set(raw["uncalibrated"]) <= {"true", "false"}
+    assert "False" not in csv.read_text(encoding="utf-8").replace('"', "").split(",")
 
 
 # -- bad input ----------------------------------------------------------------------------------

@@ -230,7 +230,7 @@ def test_unknown_magnitude_type_is_rejected(tmp_path: Path) -> None:
     """Faulty: `MB` (ambiguous between mb and mB, left out of the alias table on purpose)."""
     path = _write(tmp_path, _body(_with("magnitude_type", "MB")))
     reason = read_csv(path).rejected["reason"].iloc[0]
-    assert reason.startswith("unknown magnitude type 'MB'; use one of ML, MLv, mb, mB")
+    assert reason.startswith("unknown magnitude type 'MB'; use one of ML, mb, mB_BB")
 
 
 def test_text_in_a_number_column_is_rejected(tmp_path: Path) -> None:

@@ -149,7 +149,7 @@ def test_rows_the_store_cannot_keep_are_quarantined(store: StationMagnitudeStore
     reasons = dict(
         zip(store.quarantine()["source_location"], store.quarantine()["reason"], strict=True)
     )
-    assert reasons["line 3"].startswith("magnitude type 'MB' is unknown; use one of ML, MLv")
+    assert reasons["line 3"].startswith("magnitude type 'MB' is unknown; use one of ML, mb")
     assert reasons["line 4"] == "event_id is missing; fill it in the source row"
 
 

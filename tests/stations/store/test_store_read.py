@@ -278,7 +278,7 @@ def test_yellowstone_table_round_trip(tmp_path: Path) -> None:
 
 def test_magnitude_type_is_checked_and_aliases_resolve(filled) -> None:
     store, frame = filled
-    with pytest.raises(ConfigError, match=r"^unknown magnitude type 'Ml'; use one of ML, MLv"):
+    with pytest.raises(ConfigError, match=r"^unknown magnitude type 'Ml'; use one of ML, mb"):
         store.scan(magnitude_type="Ml")
     with pytest.raises(ConfigError, match="unknown magnitude type 'MB'"):  # mb or mB: ambiguous
         store.event("x", magnitude_type="MB")
