@@ -37,7 +37,14 @@ TypeQuery = Annotated[
     Query(alias="type", max_length=16, description="Magnitude type (default: [learn] type)."),
 ]
 EventIdPath = Annotated[str, Path(min_length=1, max_length=200, description="Event id.")]
-VersionPath = Annotated[str, Path(min_length=1, max_length=100, description="Model version id.")]
+VersionPath = Annotated[
+    str,
+    Path(
+        max_length=100,
+        pattern=r"^[A-Za-z0-9_]{1,16}-[A-Za-z0-9_-]{1,80}$",
+        description="Model version id (TYPE-YYYYMMDDTHHMMSSZ-hash).",
+    ),
+]
 
 
 def _state(request: Request) -> ServiceState:
