@@ -3,7 +3,7 @@
 One log line per request comes from :class:`fusion.service.app.RequestLog` (uvicorn's own access
 log is off so lines are not doubled). uvicorn stops accepting connections on SIGTERM or SIGINT,
 lets running requests finish (at most ``graceful_s`` seconds; event streams are closed) and
-exits 0. With ``workers > 1`` uvicorn starts that many processes, each building the app from
+the process exits with status 0. With ``workers > 1`` uvicorn starts that many processes, each building the app from
 the store and configuration passed in environment variables.
 """
 
@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import logging
 import os
+import signal
 import sys
 from pathlib import Path
 
@@ -67,6 +68,10 @@ def serve(
         "log_level": "info",
         "timeout_graceful_shutdown": graceful_s,
     }
+    # uvicorn re-raises a captured SIGTERM after its shutdown; with a handler that only logs, the
+    # process then leaves by returning, with status 0, which supervisors read as a clean stop.
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(sig, lambda signum, _frame: log.info("stopped by signal %d", signum))
     if workers > 1:
         os.environ[_STORE_ENV] = str(Path(store).resolve())
         os.environ[_CONFIG_ENV] = str(Path(config).resolve()) if config else ""

@@ -1,7 +1,7 @@
 """Fixtures of the service tests: one learned demo store per session, copied per test.
 
 The store holds the first quarter of the invented demo year (``sample_events/``) except the
-events of its last day, which the tests submit through the API; two models are learned, the first
+events of its last week, which the tests submit through the API; two models are learned, the first
 adopted and the store fused, exactly as the command-line tests build theirs.
 """
 
@@ -26,8 +26,10 @@ from fusion.service import create_app
 from fusion.settings import load_config
 from tests.cli.conftest import demo_frame, demo_slice, invoke, origin_times, version_of, write_config
 
-#: Events with origin on this day (UTC) are left out of the store and submitted by tests.
-HELD_BACK_DAY = "2025-03-31"
+#: Events with origin in the last week of March 2025 (UTC) are left out of the store and
+#: submitted by tests.
+HELD_BACK_FROM = "2025-03-25"
+HELD_BACK_TO = "2025-04-01"
 REPO = Path(__file__).resolve().parents[2]
 
 
@@ -52,9 +54,9 @@ def service_store(tmp_path_factory: pytest.TempPathFactory) -> ServiceStore:
     base = tmp_path_factory.mktemp("service")
     frame = demo_frame()
     t = origin_times(frame)
-    day = pd.Timestamp(HELD_BACK_DAY, tz="UTC")
-    stored = frame[t < day]
-    held = frame[(t >= day) & (t < day + pd.Timedelta(days=1))]
+    t0, t1 = pd.Timestamp(HELD_BACK_FROM, tz="UTC"), pd.Timestamp(HELD_BACK_TO, tz="UTC")
+    stored = frame[t < t0]
+    held = frame[(t >= t0) & (t < t1)]
     csv = demo_slice(base / "q1.csv", frame=stored)
     config = write_config(base / "fast.toml")
     root = base / "store"
