@@ -226,7 +226,7 @@ def events(
 
 
 @router.get(
-    "/events/{event_id}",
+    "/events/{event_id:path}",
     dependencies=READ,
     summary="One event explained (as 'magfuse event --json') with its recorded magnitude.",
 )
