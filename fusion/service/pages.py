@@ -103,6 +103,12 @@ def _error_page(exc: MagfuseError) -> HTMLResponse:
     return render("error.html", status=status, title="Not available", message=str(exc))
 
 
+@router.get("/favicon.ico")
+def favicon() -> Response:
+    """No icon (pages that name none, such as the report, make browsers ask for one)."""
+    return Response(status_code=204)
+
+
 @router.get("/", response_class=HTMLResponse)
 def live(request: Request) -> HTMLResponse:
     state = _state(request)
