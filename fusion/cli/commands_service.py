@@ -31,9 +31,7 @@ def serve_command(
     port: Annotated[
         int | None, typer.Option("--port", help="TCP port (default: [service] port).")
     ] = None,
-    workers: Annotated[
-        int, typer.Option("--workers", min=1, max=64, help="Worker processes.")
-    ] = 1,
+    workers: Annotated[int, typer.Option("--workers", min=1, max=64, help="Worker processes.")] = 1,
     store: StoreOption = None,
     config: ConfigOption = None,
 ) -> None:

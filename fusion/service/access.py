@@ -21,7 +21,7 @@ from fusion.service.responses import error_body
 from fusion.service.tokens import scope_allows
 from stations.strict_json import dumps
 
-__all__ = ["AccessDenied", "BodyLimit", "LOOPBACK", "require"]
+__all__ = ["LOOPBACK", "AccessDenied", "BodyLimit", "require"]
 
 #: Client addresses counted as this machine.
 LOOPBACK = frozenset({"127.0.0.1", "::1", "::ffff:127.0.0.1"})

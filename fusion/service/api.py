@@ -203,7 +203,9 @@ def list_events(
 def events(
     request: Request,
     type: TypeQuery = None,
-    start: Annotated[str | None, Query(max_length=40, description="ISO 8601 UTC, inclusive.")] = None,
+    start: Annotated[
+        str | None, Query(max_length=40, description="ISO 8601 UTC, inclusive.")
+    ] = None,
     end: Annotated[str | None, Query(max_length=40, description="ISO 8601 UTC, exclusive.")] = None,
     min_magnitude: Annotated[float | None, Query(ge=-10, le=15)] = None,
     max_magnitude: Annotated[float | None, Query(ge=-10, le=15)] = None,
@@ -319,7 +321,9 @@ def active_model(request: Request, type: Annotated[str, Path(max_length=16)]) ->
 def adopt(
     request: Request,
     type: Annotated[str, Path(max_length=16)],
-    body: Annotated[dict[str, str], Body(examples=[{"version_id": "ML-20250101T000000Z-0a1b2c3d"}])],
+    body: Annotated[
+        dict[str, str], Body(examples=[{"version_id": "ML-20250101T000000Z-0a1b2c3d"}])
+    ],
 ) -> dict[str, Any]:
     state = _state(request)
     mtype = _mtype(state, type)

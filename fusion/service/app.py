@@ -19,6 +19,7 @@ Resources (JSON, strict; errors ``{"error": {"code", "message"}}``)::
     GET  /v1/openapi.json                           this API's OpenAPI document
     GET  /fdsnws/event/1/query|version|application.wadl   FDSN event web service
     GET  /, /events/{id}, /stations, /models        analyst pages (HTML)
+    GET  /static/magfuse.css                        the pages' style sheet
 """
 
 from __future__ import annotations
@@ -105,10 +106,9 @@ def _install_error_handlers(app: FastAPI) -> None:
     @app.exception_handler(StarletteHTTPException)
     async def http_error(_request: Request, exc: StarletteHTTPException) -> StrictJSONResponse:
         code = {404: "not_found", 405: "method_not_allowed"}.get(exc.status_code, "http_error")
-        message = (
-            "no such resource; see /v1/openapi.json" if exc.status_code == 404 else exc.detail
-        )
-        return error_response(code, _one_line(str(message)), exc.status_code, exc.headers)
+        message = "no such resource; see /v1/openapi.json" if exc.status_code == 404 else exc.detail
+        headers = dict(exc.headers) if exc.headers else None
+        return error_response(code, _one_line(str(message)), exc.status_code, headers)
 
 
 def create_app(store: StationMagnitudeStore | Path, config: MagfuseConfig | None = None) -> FastAPI:
@@ -145,6 +145,9 @@ def create_app(store: StationMagnitudeStore | Path, config: MagfuseConfig | None
     app.include_router(api.router)
     app.include_router(fdsn.router)
     app.include_router(pages.router)
+    from starlette.staticfiles import StaticFiles
+
+    app.mount("/static", StaticFiles(packages=[("fusion.service", "static")]), name="static")
     app.add_middleware(BodyLimit, max_bytes=cfg.service.max_body_bytes)
     app.add_middleware(RequestLog)
     return app

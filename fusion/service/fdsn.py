@@ -3,14 +3,14 @@
 ``/fdsnws/event/1/query`` answers with QuakeML 1.2 (:func:`fusion.export.quakeml.build_catalog`):
 one event per current network magnitude, the fused value as the event's preferred magnitude (the
 file export leaves that choice to the publishing authority; a client of this endpoint asks for
-magfuse's value) and its station magnitudes with their contributions. Supported parameters: ``starttime`` (``start``),
-``endtime`` (``end``), ``minmagnitude`` (``minmag``), ``maxmagnitude`` (``maxmag``),
-``magnitudetype``, ``eventid``, ``limit``, ``offset``, ``orderby`` (``time``, ``time-asc``,
-``magnitude``, ``magnitude-asc``), ``format`` (``xml``), ``nodata`` (204 or 404); the include
+magfuse's value) and its station magnitudes with their contributions. Supported parameters:
+``starttime`` (``start``), ``endtime`` (``end``), ``minmagnitude`` (``minmag``), ``maxmagnitude``
+(``maxmag``), ``magnitudetype``, ``eventid``, ``limit``, ``offset``, ``orderby`` (``time``, ``time-
+asc``, ``magnitude``, ``magnitude-asc``), ``format`` (``xml``), ``nodata`` (204 or 404); the include
 switches (``includeallorigins``, ``includeallmagnitudes``, ``includearrivals``) are accepted and
 have nothing to add. Other parameters, such as geographic ones, are refused with 400 as the
-specification asks of unsupported parameters. Errors are plain text in the specification's
-layout (``Error <code>: <reason>`` and details).
+specification asks of unsupported parameters. Errors are plain text in the specification's layout
+(``Error <code>: <reason>`` and details).
 """
 
 from __future__ import annotations

@@ -70,7 +70,7 @@ _env.filters["pathseg"] = lambda v: quote(str(v), safe="")
 
 def _csp(nonce: str) -> str:
     return (
-        "default-src 'self'; img-src 'self' data:; style-src 'self' 'unsafe-inline'; "
+        "default-src 'self'; img-src 'self' data:; style-src 'self'; "
         f"script-src 'nonce-{nonce}'; connect-src 'self'; base-uri 'none'; form-action 'self'; "
         "frame-ancestors 'none'"
     )
@@ -125,7 +125,7 @@ def live(request: Request) -> HTMLResponse:
 
 @router.get("/events/{event_id:path}/figure.png")
 def event_figure(request: Request, event_id: str, type: str | None = None) -> Response:
-    from fusion.report.event_figure import render_event_figure
+    from fusion.report.event_figure import write_event_figure
     from fusion.workflows.event_view import explain_event
 
     state = _state(request)
@@ -133,7 +133,9 @@ def event_figure(request: Request, event_id: str, type: str | None = None) -> Re
         ex = explain_event(state.store, state.registry, state.cfg, event_id, magnitude_type=type)
     except MagfuseError as exc:
         return _error_page(exc)
-    png = render_event_figure(ex.estimate, fmt="png")
+    with tempfile.TemporaryDirectory(prefix="magfuse-figure-") as tmp:
+        # the writer adds distances and the epicentre from the explanation's readings
+        png = write_event_figure(ex, Path(tmp) / "event.png", fmt="png").read_bytes()
     return Response(png, media_type="image/png")
 
 
@@ -146,7 +148,7 @@ def event_page(request: Request, event_id: str, type: str | None = None) -> HTML
         return _error_page(exc)
     level = ev.get("confidence_level") or state.cfg.network.confidence_level
     interval = ev.get("confidence_interval") or [ev.get("ci_low"), ev.get("ci_high")]
-    lo, hi = (interval + [None, None])[:2] if isinstance(interval, list) else (None, None)
+    lo, hi = [*interval, None, None][:2] if isinstance(interval, list) else (None, None)
     contributions = sorted(
         ev.get("contributions", []),
         key=lambda c: (not c.get("detected"), -abs(c.get("weight") or 0.0)),
@@ -229,8 +231,11 @@ async def station_report(request: Request) -> Response:
     except MagfuseError as exc:
         return _error_page(exc)
     return HTMLResponse(
-        body, headers={"Content-Security-Policy": "default-src 'self'; img-src 'self' data:; "
-                       "style-src 'unsafe-inline'; script-src 'none'"}
+        body,
+        headers={
+            "Content-Security-Policy": "default-src 'self'; img-src 'self' data:; "
+            "style-src 'unsafe-inline'; script-src 'none'"
+        },
     )
 
 

@@ -1,10 +1,10 @@
 """Run the service with uvicorn (``magfuse serve``).
 
-One log line per request comes from :class:`fusion.service.app.RequestLog` (uvicorn's own access
-log is off so lines are not doubled). uvicorn stops accepting connections on SIGTERM or SIGINT,
-lets running requests finish (at most ``graceful_s`` seconds; event streams are closed) and
-the process exits with status 0. With ``workers > 1`` uvicorn starts that many processes, each building the app from
-the store and configuration passed in environment variables.
+One log line per request comes from :class:`fusion.service.app.RequestLog` (uvicorn's own access log
+is off so lines are not doubled). uvicorn stops accepting connections on SIGTERM or SIGINT, lets
+running requests finish (at most ``graceful_s`` seconds; event streams are closed) and the process
+exits with status 0. With ``workers > 1`` uvicorn starts that many processes, each building the app
+from the store and configuration passed in environment variables.
 """
 
 from __future__ import annotations
@@ -14,6 +14,7 @@ import os
 import signal
 import sys
 from pathlib import Path
+from typing import Any
 
 from fastapi import FastAPI
 
@@ -61,7 +62,7 @@ def serve(
     log = logging.getLogger("magfuse.service")
     app = create_app(store, load_config(config))  # fails early, with a one-line error
     log.info("serving %s on http://%s:%d (%d worker(s)); %s", store, host, port, workers, ADVISORY)
-    common = {
+    common: dict[str, Any] = {
         "host": host,
         "port": port,
         "access_log": False,
@@ -77,4 +78,4 @@ def serve(
         os.environ[_CONFIG_ENV] = str(Path(config).resolve()) if config else ""
         uvicorn.run("fusion.service.server:app_from_env", factory=True, workers=workers, **common)
     else:
-        uvicorn.run(app, **common)  # type: ignore[arg-type]
+        uvicorn.run(app, **common)

@@ -25,7 +25,6 @@ from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
 import pandas as pd
 
 from fusion.advisory import ADVISORY
@@ -36,12 +35,19 @@ from stations.strict_json import to_jsonable
 
 if TYPE_CHECKING:
     from fusion.model.parameters import StationParameters
-    from fusion.settings import MagfuseConfig
     from fusion.service.tokens import TokenBook
+    from fusion.settings import MagfuseConfig
     from stations.ingest import IngestOutcome
     from stations.store import StationMagnitudeStore
 
-__all__ = ["LIST_COLUMNS", "CachedRegistry", "ServiceState", "UpdateHub", "body_to_file", "update_rows"]
+__all__ = [
+    "LIST_COLUMNS",
+    "CachedRegistry",
+    "ServiceState",
+    "UpdateHub",
+    "body_to_file",
+    "update_rows",
+]
 
 #: Rejected rows listed in a submission's response (all are in the quarantine).
 MAX_REJECTED_LISTED = 1000
@@ -357,7 +363,9 @@ class ServiceState:
         body = to_jsonable(ex.to_dict())
         stored = self.fused.current(ex.estimate.magnitude_type, event_ids=[event_id])
         body["recorded"] = (
-            to_jsonable(_record(stored.iloc[0].to_dict())) if len(stored) else None
+            to_jsonable(_record({str(k): v for k, v in stored.iloc[0].to_dict().items()}))
+            if len(stored)
+            else None
         )
         with self._cache_lock:
             if len(self._event_cache) > 10_000:
@@ -405,9 +413,8 @@ def update_rows(
 
 def _iso(times: pd.Series) -> pd.Series:
     t = pd.to_datetime(times, utc=True)
-    return pd.Series(
-        np.where(t.isna(), None, t.dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ")), index=times.index
-    )
+    text = t.dt.strftime("%Y-%m-%dT%H:%M:%S.%fZ").astype(object)
+    return text.where(t.notna(), None)
 
 
 def _record(row: dict[str, Any]) -> dict[str, Any]:

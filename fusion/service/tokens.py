@@ -1,11 +1,11 @@
 """Access tokens of the service: named, scoped, stored only as salted hashes.
 
 A token is printed once by ``magfuse token add NAME --scope SCOPE``; the store keeps
-``service/tokens.json`` with, per name, the scope, a random salt and the scrypt hash of the
-token (Percival & Josefsson 2016, RFC 7914; parameters n=2**14, r=8, p=1 as the RFC's
-interactive-login example). The token starts with a public id (``mfs_<id>.<secret>``) so that one hash is computed per
-request, whatever the number of tokens. A presented token is compared with :func:`hmac.compare_digest`, so the
-time taken does not depend on how many leading bytes match.
+``service/tokens.json`` with, per name, the scope, a random salt and the scrypt hash of the token
+(Percival & Josefsson 2016, RFC 7914; parameters n=2**14, r=8, p=1 as the RFC's interactive-login
+example). The token starts with a public id (``mfs_<id>.<secret>``) so that one hash is computed per
+request, whatever the number of tokens. A presented token is compared with
+:func:`hmac.compare_digest`, so the time taken does not depend on how many leading bytes match.
 
 Scopes are ordered: ``admin`` includes ``submit``, which includes ``read``.
 
@@ -157,17 +157,14 @@ class TokenBook:
         with self._locked():
             entries = dict(self._load())
             if name not in entries:
-                raise ConfigError(
-                    f"no token named {name!r}; list them with 'magfuse token list'"
-                )
+                raise ConfigError(f"no token named {name!r}; list them with 'magfuse token list'")
             del entries[name]
             self._save(entries)
 
     def list(self) -> list[TokenInfo]:
         """Every token's name, scope and creation time, by name."""
         return [
-            TokenInfo(n, e["scope"], e.get("created", ""))
-            for n, e in sorted(self._load().items())
+            TokenInfo(n, e["scope"], e.get("created", "")) for n, e in sorted(self._load().items())
         ]
 
     def verify(self, token: str) -> TokenInfo | None:

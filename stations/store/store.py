@@ -443,7 +443,9 @@ class StationMagnitudeStore:
         )
         return table.take(order).to_pandas()
 
-    def events(self, event_ids: Sequence[str], *, magnitude_type: str | None = None) -> pd.DataFrame:
+    def events(
+        self, event_ids: Sequence[str], *, magnitude_type: str | None = None
+    ) -> pd.DataFrame:
         """Current rows of several events at once (the indexed look-up of :meth:`event`).
 
         Unknown ids are ignored. Rows are sorted by event id, magnitude type and station.

@@ -24,7 +24,14 @@ from fastapi.testclient import TestClient
 
 from fusion.service import create_app
 from fusion.settings import load_config
-from tests.cli.conftest import demo_frame, demo_slice, invoke, origin_times, version_of, write_config
+from tests.cli.conftest import (
+    demo_frame,
+    demo_slice,
+    invoke,
+    origin_times,
+    version_of,
+    write_config,
+)
 
 #: Events with origin in the last week of March 2025 (UTC) are left out of the store and
 #: submitted by tests.
@@ -74,8 +81,9 @@ def store_copy(service_store: ServiceStore, tmp_path: Path) -> ServiceStore:
     """A private copy of the learned store, for tests that write."""
     dst = tmp_path / "store"
     shutil.copytree(service_store.root, dst)
-    return ServiceStore(dst, service_store.config, service_store.v1, service_store.v2,
-                        service_store.held_back)
+    return ServiceStore(
+        dst, service_store.config, service_store.v1, service_store.v2, service_store.held_back
+    )
 
 
 def make_client(store: ServiceStore, *, loopback: bool = False, toml: str = "") -> TestClient:
@@ -124,9 +132,22 @@ def start_server(store: Path, config: Path, log: Path, port: int | None = None) 
     env = {**os.environ, "PYTHONPATH": str(REPO)}
     fh = log.open("ab")
     proc = subprocess.Popen(
-        [sys.executable, "-c", "from fusion.cli.app import main; main()", "serve", "--store", str(store),
-         "--config", str(config), "--port", str(port)],
-        stdout=fh, stderr=subprocess.STDOUT, env=env, cwd=REPO,
+        [
+            sys.executable,
+            "-c",
+            "from fusion.cli.app import main; main()",
+            "serve",
+            "--store",
+            str(store),
+            "--config",
+            str(config),
+            "--port",
+            str(port),
+        ],
+        stdout=fh,
+        stderr=subprocess.STDOUT,
+        env=env,
+        cwd=REPO,
     )
     url = f"http://127.0.0.1:{port}"
     deadline = time.monotonic() + 30

@@ -118,12 +118,22 @@ def test_event_matches_the_event_command_json(service_store: ServiceStore) -> No
     event_id = fused["event_id"]
     res = client.get(f"/v1/events/{event_id}")
     assert res.status_code == 200
-    cli = invoke("event", event_id, "--json", "--store", service_store.root,
-                 "--config", service_store.config)
+    cli = invoke(
+        "event", event_id, "--json", "--store", service_store.root, "--config", service_store.config
+    )
     expected = json.loads(cli.stdout)
     got = res.json()
-    for key in ("event_id", "magnitude", "uncertainty", "plain_mean", "median", "method",
-                "flags", "model_version", "advisory"):
+    for key in (
+        "event_id",
+        "magnitude",
+        "uncertainty",
+        "plain_mean",
+        "median",
+        "method",
+        "flags",
+        "model_version",
+        "advisory",
+    ):
         assert got[key] == expected[key], key
     assert [c["station_id"] for c in got["contributions"]] == [
         c["station_id"] for c in expected["contributions"]
@@ -160,15 +170,20 @@ def test_event_list_pages_with_a_cursor_cover_the_window_once(service_store: Ser
 
     cur = FusedStore(service_store.root).current("ML")
     t = pd.to_datetime(cur["origin_time"], utc=True)
-    want = cur[(t >= pd.Timestamp("2025-02-01", tz="UTC")) & (t < pd.Timestamp("2025-03-01", tz="UTC"))
-               & (cur["magnitude"] >= 1.0)]
+    want = cur[
+        (t >= pd.Timestamp("2025-02-01", tz="UTC"))
+        & (t < pd.Timestamp("2025-03-01", tz="UTC"))
+        & (cur["magnitude"] >= 1.0)
+    ]
     assert len(seen) == len(set(seen)) == len(want)
     assert set(seen) == set(want["event_id"])
 
 
 def test_bad_cursor_and_bad_time_are_400(service_store: ServiceStore) -> None:
     client = make_client(service_store, loopback=True)
-    assert client.get("/v1/events", params={"cursor": "%%%"}).json()["error"]["code"] == "bad_request"
+    assert (
+        client.get("/v1/events", params={"cursor": "%%%"}).json()["error"]["code"] == "bad_request"
+    )
     res = client.get("/v1/events", params={"start": "yesterday"})
     assert res.status_code == 400 and "ISO 8601" in res.json()["error"]["message"]
 

@@ -48,7 +48,9 @@ def browser_page(server: Server) -> Iterator[tuple[Any, list[str], list[str]]]:
 
 def _only_app(requests: list[str], base: str) -> list[str]:
     own = urlsplit(base).netloc
-    return [u for u in requests if urlsplit(u).scheme not in ("data",) and urlsplit(u).netloc != own]
+    return [
+        u for u in requests if urlsplit(u).scheme not in ("data",) and urlsplit(u).netloc != own
+    ]
 
 
 def test_event_page_shows_the_fused_value_and_station_rows(
@@ -77,8 +79,12 @@ def test_live_list_gains_a_row_after_a_submission(
     rows = store_copy.held_event(0)
     event_id = str(rows["event_id"].iloc[0])
     token = TokenBook(Path(store_copy.root)).add("feed", "submit")
-    res = httpx.post(server.url + "/v1/submissions", content=csv_bytes(rows),
-                     headers={"Authorization": f"Bearer {token}"}, timeout=60)
+    res = httpx.post(
+        server.url + "/v1/submissions",
+        content=csv_bytes(rows),
+        headers={"Authorization": f"Bearer {token}"},
+        timeout=60,
+    )
     assert res.status_code == 201
     row = page.locator(f'#events tbody tr[data-event="{event_id}"]')
     row.wait_for(timeout=10_000)

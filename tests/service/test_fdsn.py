@@ -28,9 +28,7 @@ def test_obspy_client_reads_fused_magnitudes_by_window_and_by_id(
     ]
     assert len(window) >= 2
     client = Client(server.url)  # discovers the event service from application.wadl
-    cat = client.get_events(
-        starttime=UTCDateTime("2025-03-01"), endtime=UTCDateTime("2025-03-03")
-    )
+    cat = client.get_events(starttime=UTCDateTime("2025-03-01"), endtime=UTCDateTime("2025-03-03"))
     got = {
         event_id_from_resource_id(str(ev.resource_id)): ev.preferred_magnitude().mag for ev in cat
     }

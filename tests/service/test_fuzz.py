@@ -49,8 +49,10 @@ def test_no_request_generated_from_the_openapi_document_gives_a_5xx(
         def run(case) -> None:  # type: ignore[no-untyped-def]
             response = case.call(headers=headers)
             if response.status_code >= 500:
-                failures.append(f"{case.method} {case.formatted_path} {response.status_code}: "
-                                f"{response.text[:200]}")
+                failures.append(
+                    f"{case.method} {case.formatted_path} {response.status_code}: "
+                    f"{response.text[:200]}"
+                )
 
         run()
         operations += 1

@@ -19,8 +19,11 @@ EVIL = '<script>alert("x")</script>&<img src=x onerror=alert(1)>'
 def _outside_refs(html: str) -> list[str]:
     """src/href values that point outside the app (scheme or protocol-relative URL)."""
     refs = re.findall(r'(?:src|href)\s*=\s*"([^"]*)"', html)
-    return [r for r in refs if re.match(r"^(?:[a-z][a-z0-9+.-]*:|//)", r, re.I)
-            and not r.startswith("data:")]
+    return [
+        r
+        for r in refs
+        if re.match(r"^(?:[a-z][a-z0-9+.-]*:|//)", r, re.I) and not r.startswith("data:")
+    ]
 
 
 def test_every_page_carries_the_advisory_and_loads_nothing_from_outside(
@@ -51,8 +54,9 @@ def test_ids_with_html_come_back_escaped_in_every_page(store_copy: ServiceStore)
     rows = store_copy.held_event(0).copy()
     rows["event_id"] = EVIL
     token = TokenBook(store_copy.root).add("s", "submit")
-    res = client.post("/v1/submissions", content=csv_bytes(rows),
-                      headers={"Authorization": f"Bearer {token}"})
+    res = client.post(
+        "/v1/submissions", content=csv_bytes(rows), headers={"Authorization": f"Bearer {token}"}
+    )
     assert res.status_code == 201 and res.json()["events"] == [EVIL]
     pages = {
         "/": client.get("/").text,

@@ -123,7 +123,9 @@ def test_kill_9_during_submissions_loses_no_acknowledged_batch_and_doubles_none(
     # restart; every acknowledged batch is there, and resubmitting everything adds each row once
     srv = start_server(store_copy.root, store_copy.config, log)
     try:
-        batches = {b.batch_id for b in StationMagnitudeStore.open(store_copy.root).manifest().batches}
+        batches = {
+            b.batch_id for b in StationMagnitudeStore.open(store_copy.root).manifest().batches
+        }
         assert set(acked) <= batches
         with httpx.Client(base_url=srv.url, timeout=60) as c:
             for body in bodies:
