@@ -53,6 +53,8 @@ __all__ = [
 MAX_REJECTED_LISTED = 1000
 #: Event ids listed in a submission's response.
 MAX_EVENTS_LISTED = 1000
+#: Explanations kept in memory (oldest dropped first).
+MAX_CACHED_EVENTS = 20_000
 
 
 class CachedRegistry(ModelRegistry):
@@ -201,6 +203,10 @@ class ServiceState:
         self._event_cache: dict[tuple[str, str | None], tuple[tuple[Any, ...], dict[str, Any]]]
         self._event_cache = {}
         self._cache_lock = threading.Lock()
+        self._cache_seq = 0
+        self._cleared_at = 0
+        self._evicted_at: dict[str, int] = {}
+        self._commits_seen: tuple[Any, ...] = ()
 
     # -- submissions -----------------------------------------------------------------------
     def submit(
@@ -222,6 +228,7 @@ class ServiceState:
             path = body_to_file(body, Path(tmp), kind)
             try:
                 with self.store.write_lock():
+                    before = self._commits()
                     outcome = ingest_file(
                         self.store,
                         path,
@@ -232,6 +239,11 @@ class ServiceState:
                     )
                     touched = self._touched(outcome.report.batch_id)
                     fused = self.fuse_events(touched)
+                    # Still under the lock: only this submission wrote since ``before``; if
+                    # another writer committed earlier, forget every cached explanation.
+                    ids = touched["event_id"].astype(str).tolist()
+                    known = before == self._commits_seen
+                    self._forget(ids if known else None, self._commits())
             except (MalformedFileError, UnknownFormatError, SchemaError) as exc:
                 # The temporary file means nothing to the client: name the body instead.
                 raise type(exc)(str(exc).replace(str(path), "request body")) from None
@@ -330,17 +342,30 @@ class ServiceState:
         return out
 
     # -- reading ---------------------------------------------------------------------------
-    def stamp(self, magnitude_type: str | None) -> tuple[Any, ...]:
-        """What an event's explanation depends on: store and fused commits, active models."""
+    def _commits(self) -> tuple[int, tuple[int, int]]:
+        """Generation of the station store and stamp of the fused store's manifest."""
         m = self.store.manifest()
-        fused_path = self.fused.root / "manifest.json"
         try:
-            fst = fused_path.stat()
-            fused_stamp: tuple[int, int] = (fst.st_ino, fst.st_mtime_ns)
+            fst = (self.fused.root / "manifest.json").stat()
+            fused_stamp = (fst.st_ino, fst.st_mtime_ns)
         except FileNotFoundError:
             fused_stamp = (0, 0)
-        types = [magnitude_type] if magnitude_type else self.model_types()
-        return (m.generation, fused_stamp, tuple(self.registry.active_id(t) for t in types))
+        return m.generation, fused_stamp
+
+    def _forget(self, event_ids: list[str] | None, commits: tuple[Any, ...]) -> None:
+        """Drop cached explanations (of ``event_ids``, or all) and note the commits seen."""
+        with self._cache_lock:
+            self._cache_seq += 1
+            if event_ids is None:
+                self._event_cache.clear()
+                self._evicted_at.clear()
+                self._cleared_at = self._cache_seq
+            else:
+                for eid in event_ids:
+                    self._evicted_at[eid] = self._cache_seq
+                    for key in [k for k in self._event_cache if k[0] == eid]:
+                        del self._event_cache[key]
+            self._commits_seen = commits
 
     def model_types(self) -> list[str]:
         """Magnitude types that have a model folder."""
@@ -348,29 +373,38 @@ class ServiceState:
         return sorted(p.name for p in root.glob("*") if p.is_dir()) if root.is_dir() else []
 
     def event(self, event_id: str, magnitude_type: str | None) -> dict[str, Any]:
-        """``magfuse event --json`` of one event, plus its stored (recorded) network magnitude."""
+        """``magfuse event --json`` of one event, plus its stored (recorded) network magnitude.
+
+        Explanations are cached per event and model version. A submission through this service
+        forgets the events it touched; a commit by any other writer (command line, nightly
+        run, another worker) forgets them all, since it may have touched any event.
+        """
         from fusion.workflows.event_view import explain_event
 
+        commits = self._commits()
+        if commits != self._commits_seen:
+            self._forget(None, commits)
+        types = [magnitude_type] if magnitude_type else self.model_types()
+        active = tuple(self.registry.active_id(t) for t in types)
         key = (event_id, magnitude_type)
-        stamp = self.stamp(magnitude_type)
         with self._cache_lock:
             hit = self._event_cache.get(key)
-        if hit is not None and hit[0] == stamp:
+            started = self._cache_seq
+        if hit is not None and hit[0] == active:
             return hit[1]
         ex = explain_event(
             self.store, self.registry, self.cfg, event_id, magnitude_type=magnitude_type
         )
         body = to_jsonable(ex.to_dict())
         stored = self.fused.current(ex.estimate.magnitude_type, event_ids=[event_id])
-        body["recorded"] = (
-            to_jsonable(_record({str(k): v for k, v in stored.iloc[0].to_dict().items()}))
-            if len(stored)
-            else None
-        )
+        row = {str(k): v for k, v in stored.iloc[0].to_dict().items()} if len(stored) else None
+        body["recorded"] = to_jsonable(_record(row)) if row is not None else None
         with self._cache_lock:
-            if len(self._event_cache) > 10_000:
-                self._event_cache.clear()
-            self._event_cache[key] = (stamp, body)
+            stale = self._evicted_at.get(event_id, 0) > started or self._cleared_at > started
+            if not stale:
+                if len(self._event_cache) >= MAX_CACHED_EVENTS:
+                    self._event_cache.pop(next(iter(self._event_cache)))
+                self._event_cache[key] = (active, body)
         return body
 
 

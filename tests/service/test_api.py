@@ -234,3 +234,48 @@ def test_health_ready_and_openapi(service_store: ServiceStore) -> None:
 def test_unknown_path_is_a_json_404(service_store: ServiceStore) -> None:
     res = make_client(service_store).get("/v1/nothing-here")
     assert res.status_code == 404 and res.json()["error"]["code"] == "not_found"
+
+
+def _revised(store: ServiceStore, event_id: str, shift: float) -> bytes:
+    """The stored demo rows of one event with every magnitude shifted (a new revision)."""
+    from tests.cli.conftest import demo_frame
+
+    frame = demo_frame()
+    rows = frame[frame["event_id"] == event_id].copy()
+    has = rows["magnitude"] != ""
+    rows.loc[has, "magnitude"] = (rows.loc[has, "magnitude"].astype(float) + shift).map(
+        lambda v: f"{v:.3f}"
+    )
+    return csv_bytes(rows)
+
+
+def test_cached_event_is_read_anew_after_a_submission_revises_it(store_copy: ServiceStore) -> None:
+    client = make_client(store_copy, loopback=True)
+    event_id = client.get("/v1/events", params={"limit": 1}).json()["events"][0]["event_id"]
+    before = client.get(f"/v1/events/{event_id}").json()["magnitude"]
+    assert client.get(f"/v1/events/{event_id}").json()["magnitude"] == before  # cached
+    headers = {**_token(store_copy, "submit"), "Content-Type": "text/csv"}
+    res = client.post(
+        "/v1/submissions", content=_revised(store_copy, event_id, 0.5), headers=headers
+    )
+    assert res.status_code == 201 and res.json()["revised"] > 0
+    after = client.get(f"/v1/events/{event_id}").json()
+    fresh = json.loads(invoke("event", event_id, "--json", "--store", store_copy.root).stdout)
+    assert after["magnitude"] == pytest.approx(fresh["magnitude"], abs=1e-9)
+    assert after["magnitude"] > before + 0.2
+    assert after["recorded"]["magnitude"] == pytest.approx(after["magnitude"], abs=1e-9)
+
+
+def test_cached_event_is_read_anew_after_a_command_line_ingest(
+    store_copy: ServiceStore, tmp_path
+) -> None:
+    client = make_client(store_copy, loopback=True)
+    event_id = client.get("/v1/events", params={"limit": 1}).json()["events"][0]["event_id"]
+    before = client.get(f"/v1/events/{event_id}").json()["magnitude"]
+    path = tmp_path / "revision.csv"
+    path.write_bytes(_revised(store_copy, event_id, -0.4))
+    assert invoke("ingest", path, "--store", store_copy.root).exit_code == 0
+    after = client.get(f"/v1/events/{event_id}").json()["magnitude"]
+    fresh = json.loads(invoke("event", event_id, "--json", "--store", store_copy.root).stdout)
+    assert after == pytest.approx(fresh["magnitude"], abs=1e-9)
+    assert after < before - 0.2
