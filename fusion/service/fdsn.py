@@ -8,8 +8,11 @@ magfuse's value) and its station magnitudes with their contributions. Supported 
 (``maxmag``), ``magnitudetype``, ``eventid``, ``limit``, ``offset``, ``orderby`` (``time``, ``time-
 asc``, ``magnitude``, ``magnitude-asc``), ``format`` (``xml``), ``nodata`` (204 or 404); the include
 switches (``includeallorigins``, ``includeallmagnitudes``, ``includearrivals``) are accepted and
-have nothing to add. Other parameters, such as geographic ones, are refused with 400 as the
-specification asks of unsupported parameters. Errors are plain text in the specification's layout
+have nothing to add. The box parameters (``minlatitude``, ``maxlatitude``, ``minlongitude``,
+``maxlongitude`` in degrees, ``mindepth``, ``maxdepth`` in km) select on the location stored with
+the station magnitudes; an event without one is outside every box. Other parameters (the radial
+search, ``updatedafter``, ``catalog``, ``contributor``) are refused with 400 as the specification
+asks of unsupported parameters. Errors are plain text in the specification's layout
 (``Error <code>: <reason>`` and details).
 """
 
@@ -58,6 +61,29 @@ _ACCEPTED = {
     "includeallorigins",
     "includeallmagnitudes",
     "includearrivals",
+    "minlatitude",
+    "maxlatitude",
+    "minlongitude",
+    "maxlongitude",
+    "mindepth",
+    "maxdepth",
+}
+_ALIASES.update(
+    {
+        "minlat": "minlatitude",
+        "maxlat": "maxlatitude",
+        "minlon": "minlongitude",
+        "maxlon": "maxlongitude",
+    }
+)
+#: Box parameters -> (store column, lower bound?).
+_BOX = {
+    "minlatitude": ("event_latitude", True),
+    "maxlatitude": ("event_latitude", False),
+    "minlongitude": ("event_longitude", True),
+    "maxlongitude": ("event_longitude", False),
+    "mindepth": ("event_depth", True),
+    "maxdepth": ("event_depth", False),
 }
 _ORDERS = ("time", "time-asc", "magnitude", "magnitude-asc")
 
@@ -145,6 +171,9 @@ def select_events(state: ServiceState, params: dict[str, str]) -> pd.DataFrame:
     if hi is not None:
         keep &= mag <= hi
     frame = frame[keep]
+    box = {k: _number(params, k) for k in _BOX if k in params}
+    if box and len(frame):
+        frame = frame[_inside_box(state, mtype, frame, box)]
     if order.startswith("magnitude"):
         frame = frame.sort_values(
             ["magnitude", "event_id"], ascending=order == "magnitude-asc", kind="stable"
@@ -153,6 +182,26 @@ def select_events(state: ServiceState, params: dict[str, str]) -> pd.DataFrame:
         frame = frame.iloc[::-1]
     frame = frame.iloc[offset - 1 : (offset - 1 + limit) if limit is not None else None]
     return frame.reset_index(drop=True)
+
+
+def _inside_box(
+    state: ServiceState, mtype: str, frame: pd.DataFrame, box: dict[str, float]
+) -> np.ndarray:
+    """Which events of ``frame`` have a location inside the box (deg, km); unknown = outside."""
+    times = pd.to_datetime(frame["origin_time"], utc=True)
+    rows = state.store.scan(
+        magnitude_type=mtype,
+        start=times.min().to_pydatetime(),
+        end=(times.max() + pd.Timedelta(microseconds=1)).to_pydatetime(),
+        columns=["event_id", "event_latitude", "event_longitude", "event_depth"],
+    )
+    loc = rows.groupby("event_id", sort=False).first().reindex(frame["event_id"].astype(str))
+    inside = np.ones(len(frame), dtype=bool)
+    for name, value in box.items():
+        column, lower = _BOX[name]
+        v = loc[column].to_numpy(dtype=float)
+        inside &= (v >= value) if lower else (v <= value)  # NaN compares False: outside
+    return inside
 
 
 def quakeml_bytes(state: ServiceState, events: pd.DataFrame) -> bytes:
@@ -209,6 +258,12 @@ def _wadl(base: str) -> str:
             ("maxmagnitude", "xs:double"),
             ("magnitudetype", "xs:string"),
             ("eventid", "xs:string"),
+            ("minlatitude", "xs:double"),
+            ("maxlatitude", "xs:double"),
+            ("minlongitude", "xs:double"),
+            ("maxlongitude", "xs:double"),
+            ("mindepth", "xs:double"),
+            ("maxdepth", "xs:double"),
             ("limit", "xs:int"),
             ("offset", "xs:int"),
             ("orderby", "xs:string"),

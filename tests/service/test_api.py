@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import json
+import re
+from pathlib import Path
 
 import pandas as pd
 import pytest
@@ -279,3 +281,48 @@ def test_cached_event_is_read_anew_after_a_command_line_ingest(
     fresh = json.loads(invoke("event", event_id, "--json", "--store", store_copy.root).stdout)
     assert after == pytest.approx(fresh["magnitude"], abs=1e-9)
     assert after < before - 0.2
+
+
+def test_quakeml_submission_counts_equal_those_of_the_ingest_command(
+    store_copy: ServiceStore, tmp_path
+) -> None:
+    import shutil
+
+    import sample_events
+
+    xml = Path(sample_events.__file__).parent / "demo_network_2025_december.xml"
+    other = tmp_path / "other"
+    shutil.copytree(store_copy.root, other)
+    cli = invoke("ingest", xml, "--store", other)
+    m = re.search(
+        r"(\d+) accepted \((\d+) revised\), (\d+) duplicate, (\d+) quarantined", cli.stdout
+    )
+    assert m is not None, cli.stdout + cli.stderr
+    client = make_client(store_copy)
+    headers = {**_token(store_copy, "submit"), "Content-Type": "application/xml"}
+    res = client.post("/v1/submissions", content=xml.read_bytes(), headers=headers)
+    assert res.status_code == 201, res.text
+    body = res.json()
+    assert [body["accepted"], body["revised"], body["duplicate"], body["quarantined"]] == [
+        int(g) for g in m.groups()
+    ]
+    assert body["fusion"]["ML"]["events_written"] == body["events_touched"] > 100
+
+
+def test_submission_waits_for_another_writer_then_fails_with_the_lock_message(
+    store_copy: ServiceStore,
+) -> None:
+    client = make_client(store_copy, toml="\n[store]\nlock_timeout_s = 0.3\n")
+    other = StationMagnitudeStore.open(store_copy.root, create=False, lock_timeout_s=0.3)
+    headers = {**_token(store_copy, "submit"), "Content-Type": "text/csv"}
+    with other.write_lock():  # e.g. a nightly run started from cron
+        res = client.post(
+            "/v1/submissions", content=csv_bytes(store_copy.held_event(0)), headers=headers
+        )
+    assert res.status_code == 503
+    err = res.json()["error"]
+    assert err["code"] == "store_busy" and "still holds the store lock" in err["message"]
+    after = client.post(
+        "/v1/submissions", content=csv_bytes(store_copy.held_event(0)), headers=headers
+    )
+    assert after.status_code == 201

@@ -50,6 +50,21 @@ def test_obspy_client_reads_fused_magnitudes_by_window_and_by_id(
 
     top = client.get_events(orderby="magnitude", limit=1, minmagnitude=-5)
     assert top[0].preferred_magnitude().mag == pytest.approx(current["magnitude"].max(), abs=1e-9)
+    # a box around the first event's stored location (read from the demo CSV with pandas)
+    from tests.cli.conftest import demo_frame
+
+    demo = demo_frame()
+    row = demo[demo["event_id"] == str(one["event_id"])].iloc[0]
+    lat, lon = float(row["event_latitude"]), float(row["event_longitude"])
+    boxed = client.get_events(
+        starttime=UTCDateTime("2025-03-01"),
+        endtime=UTCDateTime("2025-03-03"),
+        minlatitude=lat - 1e-4,
+        maxlatitude=lat + 1e-4,
+        minlongitude=lon - 1e-4,
+        maxlongitude=lon + 1e-4,
+    )
+    assert [event_id_from_resource_id(str(e.resource_id)) for e in boxed] == [one["event_id"]]
     with pytest.raises(FDSNNoDataException):
         client.get_events(eventid="no-such-event")
 
@@ -59,7 +74,7 @@ def test_fdsn_version_wadl_and_errors(service_store: ServiceStore) -> None:
     assert client.get("/fdsnws/event/1/version").text == "1.2.0"
     wadl = client.get("/fdsnws/event/1/application.wadl")
     assert wadl.status_code == 200 and 'name="eventid"' in wadl.text
-    res = client.get("/fdsnws/event/1/query", params={"minlatitude": 10})
+    res = client.get("/fdsnws/event/1/query", params={"latitude": 10, "maxradius": 5})
     assert res.status_code == 400 and res.text.startswith("Error 400: Bad Request")
     res = client.get("/fdsnws/event/1/query", params={"starttime": "soon"})
     assert res.status_code == 400

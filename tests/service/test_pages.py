@@ -88,3 +88,10 @@ def test_models_page_shows_the_dry_run_of_the_newest_candidate(
 
 def test_pages_need_a_read_token_off_loopback(service_store: ServiceStore) -> None:
     assert make_client(service_store).get("/").status_code == 401
+
+
+def test_station_report_of_the_active_model_is_served(service_store: ServiceStore) -> None:
+    res = make_client(service_store, loopback=True).get("/stations/report")
+    assert res.status_code == 200
+    assert ADVISORY in res.text and service_store.v1 in res.text
+    assert _outside_refs(res.text) == []
