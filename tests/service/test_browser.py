@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import shutil
 from collections.abc import Iterator
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
@@ -16,7 +17,7 @@ import httpx
 import pytest
 
 from fusion.service.tokens import TokenBook
-from tests.service.conftest import Server, ServiceStore, csv_bytes
+from tests.service.conftest import Server, ServiceStore, csv_bytes, start_server
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 
@@ -27,23 +28,51 @@ pytestmark = [
 ]
 
 
-@pytest.fixture
-def browser_page(server: Server) -> Iterator[tuple[Any, list[str], list[str]]]:
-    """A page, the console errors it logs and every URL it requests."""
+@pytest.fixture(scope="module")
+def shared_store(
+    service_store: ServiceStore, tmp_path_factory: pytest.TempPathFactory
+) -> ServiceStore:
+    """One copy of the learned store for this module's server (starting one costs seconds)."""
+    root = tmp_path_factory.mktemp("browser") / "store"
+    shutil.copytree(service_store.root, root)
+    return replace(service_store, root=root)
+
+
+@pytest.fixture(scope="module")
+def server(shared_store: ServiceStore) -> Iterator[Server]:
+    srv = start_server(shared_store.root, shared_store.config, shared_store.root.parent / "log")
+    try:
+        yield srv
+    finally:
+        srv.stop()
+
+
+@pytest.fixture(scope="module")
+def browser() -> Iterator[Any]:
     from playwright.sync_api import sync_playwright
 
+    with sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, args=["--no-sandbox"])
+        try:
+            yield b
+        finally:
+            b.close()
+
+
+@pytest.fixture
+def browser_page(browser: Any) -> Iterator[tuple[Any, list[str], list[str]]]:
+    """A page, the console errors it logs and every URL it requests."""
     errors: list[str] = []
     requests: list[str] = []
-    with sync_playwright() as p:
-        browser = p.chromium.launch(executable_path=CHROMIUM, args=["--no-sandbox"])
-        page = browser.new_page(viewport={"width": 1280, "height": 900})
-        page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-        page.on("pageerror", lambda e: errors.append(str(e)))
-        page.on("request", lambda r: requests.append(r.url))
-        try:
-            yield page, errors, requests
-        finally:
-            browser.close()
+    context = browser.new_context(viewport={"width": 1280, "height": 900})
+    page = context.new_page()
+    page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+    page.on("pageerror", lambda e: errors.append(str(e)))
+    page.on("request", lambda r: requests.append(r.url))
+    try:
+        yield page, errors, requests
+    finally:
+        context.close()
 
 
 def _only_app(requests: list[str], base: str) -> list[str]:
@@ -70,15 +99,15 @@ def test_event_page_shows_the_fused_value_and_station_rows(
 
 
 def test_live_list_gains_a_row_after_a_submission(
-    server: Server, store_copy: ServiceStore, browser_page: tuple[Any, list[str], list[str]]
+    server: Server, shared_store: ServiceStore, browser_page: tuple[Any, list[str], list[str]]
 ) -> None:
     page, errors, requests = browser_page
     page.goto(server.url + "/")
     page.wait_for_function("document.getElementById('live-status').textContent === 'Live.'")
     rows_before = page.locator("#events tbody tr").count()
-    rows = store_copy.held_event(0)
+    rows = shared_store.held_event(0)
     event_id = str(rows["event_id"].iloc[0])
-    token = TokenBook(Path(store_copy.root)).add("feed", "submit")
+    token = TokenBook(Path(shared_store.root)).add("feed", "submit")
     res = httpx.post(
         server.url + "/v1/submissions",
         content=csv_bytes(rows),
