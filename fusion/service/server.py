@@ -5,6 +5,10 @@ is off so lines are not doubled). uvicorn stops accepting connections on SIGTERM
 running requests finish (at most ``graceful_s`` seconds; event streams are closed) and the process
 exits with status 0. With ``workers > 1`` uvicorn starts that many processes, each building the app
 from the store and configuration passed in environment variables.
+
+With several workers, each keeps its own cache of event explanations (emptied whenever another
+process commits) and its own stream of updates: a client of ``/v1/updates`` sees the events fused
+by submissions its worker received. Use one worker for a duty screen that must see every update.
 """
 
 from __future__ import annotations
@@ -26,11 +30,18 @@ _STORE_ENV = "MAGFUSE_SERVICE_STORE"
 _CONFIG_ENV = "MAGFUSE_SERVICE_CONFIG"
 
 
+def _configure_logging() -> None:
+    logging.basicConfig(
+        level=logging.INFO, format="%(asctime)s %(name)s %(message)s", stream=sys.stderr
+    )
+
+
 def app_from_env() -> FastAPI:
     """App factory for worker processes: store and configuration from the environment."""
     from fusion.service.app import create_app
     from fusion.settings import load_config
 
+    _configure_logging()  # worker processes start fresh
     config = os.environ.get(_CONFIG_ENV) or None
     return create_app(Path(os.environ[_STORE_ENV]), load_config(Path(config) if config else None))
 
@@ -56,9 +67,7 @@ def serve(
     from fusion.service.app import create_app
     from fusion.settings import load_config
 
-    logging.basicConfig(
-        level=logging.INFO, format="%(asctime)s %(name)s %(message)s", stream=sys.stderr
-    )
+    _configure_logging()
     log = logging.getLogger("magfuse.service")
     app = create_app(store, load_config(config))  # fails early, with a one-line error
     log.info("serving %s on http://%s:%d (%d worker(s)); %s", store, host, port, workers, ADVISORY)
