@@ -200,25 +200,32 @@ def stations_page(request: Request) -> HTMLResponse:
 
 
 _report_lock = threading.Lock()
-_report_dir = Path(tempfile.mkdtemp(prefix="magfuse-service-report-"))
+_report_dirs: list[Path] = []
+
+
+def _report_root() -> Path:
+    """This process's private folder of report pages (created on first use, removed at exit)."""
+    if not _report_dirs:
+        import atexit
+        import shutil
+
+        folder = Path(tempfile.mkdtemp(prefix="magfuse-service-report-"))
+        atexit.register(shutil.rmtree, folder, ignore_errors=True)
+        _report_dirs.append(folder)
+    return _report_dirs[0]
 
 
 def _report_html(state: ServiceState, version_id: str) -> bytes:
     """The report page of a version, written once per process into a private folder."""
     from fusion.workflows.reporting import write_model_report
 
-    out = _report_dir / version_id
     with _report_lock:
-        page = out / "station_report.html"
+        out = _report_root() / version_id
         existing = sorted(out.glob("*.html")) if out.is_dir() else []
-        if not existing:
-            files = write_model_report(
-                state.store, state.registry, state.cfg, out, version=version_id
-            )
-            page = files.html
-        else:
-            page = existing[0]
-        return page.read_bytes()
+        if existing:
+            return existing[0].read_bytes()
+        files = write_model_report(state.store, state.registry, state.cfg, out, version=version_id)
+        return files.html.read_bytes()
 
 
 @router.get("/stations/report", response_class=HTMLResponse)
