@@ -222,7 +222,36 @@ def quakeml_bytes(state: ServiceState, events: pd.DataFrame) -> bytes:
     return buf.getvalue()
 
 
-@router.get("/query", dependencies=[Depends(require("read"))], summary="FDSN event query.")
+def _openapi_parameters() -> dict[str, Any]:
+    """The query parameters in the OpenAPI document (the endpoint reads them itself)."""
+    kinds = {
+        "starttime": {"type": "string", "format": "date-time"},
+        "endtime": {"type": "string", "format": "date-time"},
+        "minmagnitude": {"type": "number"},
+        "maxmagnitude": {"type": "number"},
+        "magnitudetype": {"type": "string"},
+        "eventid": {"type": "string"},
+        "limit": {"type": "integer"},
+        "offset": {"type": "integer"},
+        "orderby": {"type": "string", "enum": list(_ORDERS)},
+        "format": {"type": "string", "enum": ["xml"]},
+        "nodata": {"type": "integer", "enum": [204, 404]},
+        **{name: {"type": "number"} for name in _BOX},
+    }
+    return {
+        "parameters": [
+            {"name": name, "in": "query", "required": False, "schema": schema}
+            for name, schema in kinds.items()
+        ]
+    }
+
+
+@router.get(
+    "/query",
+    dependencies=[Depends(require("read"))],
+    summary="FDSN event query.",
+    openapi_extra=_openapi_parameters(),
+)
 async def query(request: Request) -> Response:
     state: ServiceState = request.app.state.magfuse
     try:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import pytest
 
@@ -136,3 +137,24 @@ def test_version_id_with_a_parent_folder_part_is_refused(service_store: ServiceS
     client = make_client(service_store, loopback=True)
     res = client.get("/v1/models/..-x/dry-run")
     assert res.status_code == 422 and res.json()["error"]["code"] == "invalid_parameter"
+
+
+def test_revoking_an_unknown_token_is_a_one_line_error(store_copy: ServiceStore) -> None:
+    res = invoke("token", "revoke", "nobody", "--store", store_copy.root)
+    assert res.exit_code == 1
+    assert res.stderr.startswith("Error: no token named 'nobody'") and res.stderr.count("\n") == 1
+
+
+@pytest.mark.parametrize("name", ["", "a b", "../x", "x" * 65, "<b>"])
+def test_token_names_outside_the_allowed_characters_are_refused(
+    store_copy: ServiceStore, name: str
+) -> None:
+    res = invoke("token", "add", name, "--store", store_copy.root)
+    assert res.exit_code == 1 and "is not allowed" in res.stderr
+    assert not (store_copy.root / TOKENS_FILE).exists()
+
+
+def test_serve_without_a_store_is_a_one_line_error(tmp_path: Path) -> None:
+    res = invoke("serve", "--store", tmp_path / "missing", "--port", "1")
+    assert res.exit_code == 1 and res.stderr.startswith("Error: ")
+    assert res.stderr.count("\n") == 1
