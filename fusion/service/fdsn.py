@@ -1,4 +1,4 @@
-"""The FDSN event web service (fdsnws-event 1.2, FDSN 2019) over the fused magnitudes.
+"""The FDSN event web service (FDSN specification fdsnws-event, version 1.2) over fused magnitudes.
 
 ``/fdsnws/event/1/query`` answers with QuakeML 1.2 (:func:`fusion.export.quakeml.build_catalog`):
 one event per current network magnitude, the fused value as the event's preferred magnitude (the

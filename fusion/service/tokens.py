@@ -2,10 +2,11 @@
 
 A token is printed once by ``magfuse token add NAME --scope SCOPE``; the store keeps
 ``service/tokens.json`` with, per name, the scope, a random salt and the scrypt hash of the token
-(Percival & Josefsson 2016, RFC 7914; parameters n=2**14, r=8, p=1 as the RFC's interactive-login
-example). The token starts with a public id (``mfs_<id>.<secret>``) so that one hash is computed per
-request, whatever the number of tokens. A presented token is compared with
-:func:`hmac.compare_digest`, so the time taken does not depend on how many leading bytes match.
+(Percival & Josefsson 2016, RFC 7914; parameters n=2**14, r=8, p=1, one of the RFC's test-vector
+settings and the usual choice for interactive logins: common practice, no source). The token starts
+with a public id (``mfs_<id>.<secret>``) so that one hash is computed per request, whatever the
+number of tokens. A presented token is compared with :func:`hmac.compare_digest`, so the time taken
+does not depend on how many leading bytes match.
 
 Scopes are ordered: ``admin`` includes ``submit``, which includes ``read``.
 
