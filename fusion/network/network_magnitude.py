@@ -1010,7 +1010,8 @@ def fuse_events(
         n_eff = 1.0 / np.bincount(ev, weights=w * w, minlength=n_events)
     chi2 = np.where(counts >= 2, chi2, np.nan)
     n_eff[counts == 0] = np.nan
-    prior_share = np.bincount(ev, weights=w * prior_row[rows], minlength=n_events)
+    # float even when no event has a detection (bincount of nothing is an int array)
+    prior_share = np.bincount(ev, weights=w * prior_row[rows], minlength=n_events).astype(float)
     prior_share[counts == 0] = np.nan
     max_infl, infl_row = _group_argmax(ev, np.abs(gls.influence), counts, starts)
     max_abs_z, _ = _group_argmax(ev, np.abs(z), counts, starts)

@@ -16,6 +16,7 @@ fails with the lock's one-line message) and the fused value always reflects the 
 from __future__ import annotations
 
 import hashlib
+import logging
 import tempfile
 import threading
 import time
@@ -30,7 +31,7 @@ import pandas as pd
 from fusion.advisory import ADVISORY
 from fusion.versions.fused_store import FusedStore
 from fusion.versions.model_registry import ModelRegistry, ModelVersion
-from stations.errors import MalformedFileError, SchemaError, UnknownFormatError
+from stations.errors import MagfuseError, MalformedFileError, SchemaError, UnknownFormatError
 from stations.strict_json import to_jsonable
 
 if TYPE_CHECKING:
@@ -39,6 +40,8 @@ if TYPE_CHECKING:
     from fusion.settings import MagfuseConfig
     from stations.ingest import IngestOutcome
     from stations.store import StationMagnitudeStore
+
+log = logging.getLogger("magfuse.service")
 
 __all__ = [
     "LIST_COLUMNS",
@@ -327,9 +330,20 @@ class ServiceState:
                 continue
             version = self.registry.get(vid)
             frame = self.store.events(group["event_id"].tolist(), magnitude_type=mtype)
-            obs = ObservationSet.from_frame(frame, magnitude_type=mtype)
-            result = fuse_with_version(obs, self.registry, version, self.cfg)
-            report = self.fused.write_run(result, model_version=vid)
+            try:
+                obs = ObservationSet.from_frame(frame, magnitude_type=mtype)
+                result = fuse_with_version(obs, self.registry, version, self.cfg)
+                report = self.fused.write_run(result, model_version=vid)
+            except Exception as exc:  # the batch is committed: say so, whatever failed here
+                if not isinstance(exc, MagfuseError):
+                    log.exception("fusion on arrival failed for %s events of a batch", mtype)
+                out[mtype] = {
+                    "model_version": vid,
+                    "events_written": 0,
+                    "left_final": 0,
+                    "error": " ".join(str(exc).split())[:500] or type(exc).__name__,
+                }
+                continue
             out[mtype] = {
                 "model_version": vid,
                 "events_written": report.events_written,

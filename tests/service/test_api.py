@@ -326,3 +326,19 @@ def test_submission_waits_for_another_writer_then_fails_with_the_lock_message(
         "/v1/submissions", content=csv_bytes(store_copy.held_event(0)), headers=headers
     )
     assert after.status_code == 201
+
+
+def test_event_with_only_non_detections_is_committed_and_fused(store_copy: ServiceStore) -> None:
+    """An event nobody detected has no network magnitude, and the submission still succeeds."""
+    client = make_client(store_copy, loopback=True)
+    rows = store_copy.held_event(0).copy()
+    rows["event_id"] = "seen-by-nobody"
+    rows["detected"] = "false"
+    rows["magnitude"] = ""
+    headers = {**_token(store_copy, "submit"), "Content-Type": "text/csv"}
+    res = client.post("/v1/submissions", content=csv_bytes(rows), headers=headers)
+    assert res.status_code == 201, res.text
+    assert res.json()["fusion"]["ML"]["events_written"] == 1
+    assert "error" not in res.json()["fusion"]["ML"]
+    ev = client.get("/v1/events/seen-by-nobody").json()
+    assert ev["magnitude"] is None and ev["n_stations"] == 0
