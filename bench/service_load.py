@@ -204,6 +204,104 @@ def server_side(log: Path) -> None:
             )
 
 
+def read_phase(url: str, root: Path, args: argparse.Namespace) -> None:
+    """One-event reads (uncached, then a hot set of 100) against the static file."""
+    ids = event_ids(root, args.reads + 100, args.seed)
+    hot, cold = ids[:100], ids[100 : 100 + min(args.reads, 300)]
+    ev = asyncio.run(
+        closed_loop(url, [f"/v1/events/{i}" for i in cold], args.clients, args.max_seconds)
+    )
+    print(
+        f"one-event read of distinct events (nothing cached), {args.clients} clients, "
+        f"{len(ev)} requests: p50 {pct(ev, 50):.1f} ms, p99 {pct(ev, 99):.1f} ms"
+    )
+    rng = np.random.default_rng(args.seed)
+    hot_paths = [f"/v1/events/{hot[k]}" for k in rng.integers(0, len(hot), args.reads)]
+    asyncio.run(closed_loop(url, [f"/v1/events/{h}" for h in hot], args.clients, 60))
+    ev = asyncio.run(closed_loop(url, hot_paths, args.clients, args.max_seconds))
+    static = ["/static/magfuse.css"] * args.reads
+    st = asyncio.run(closed_loop(url, static, args.clients, args.max_seconds))
+    print(
+        f"one-event read of 100 recent events (a duty screen; explanations cached), "
+        f"{args.clients} clients, {len(ev)} requests: "
+        f"p50 {pct(ev, 50):.1f} ms, p99 {pct(ev, 99):.1f} ms (target p99 <= 50 ms)"
+    )
+    print(
+        f"static file, same stack and clients, {len(st)} requests: "
+        f"p50 {pct(st, 50):.1f} ms, p99 {pct(st, 99):.1f} ms; "
+        f"ratio event/static p50 {pct(ev, 50) / pct(st, 50):.1f}, "
+        f"p99 {pct(ev, 99) / pct(st, 99):.1f}"
+    )
+
+
+def latency_phase(
+    url: str, events: list[pd.DataFrame], headers: dict[str, str], cap_s: float
+) -> None:
+    """Submission to fused value readable, one 30-station event at a time."""
+    lat: list[float] = []
+    with httpx.Client(base_url=url, timeout=60) as c:
+        deadline = time.monotonic() + cap_s
+        for frame in events:
+            if time.monotonic() > deadline:
+                break
+            eid = str(frame["event_id"].iloc[0])
+            t = time.perf_counter()
+            r = c.post("/v1/submissions", content=frame.to_csv(index=False), headers=headers)
+            assert r.status_code == 201, r.text
+            while True:
+                got = c.get(f"/v1/events/{eid}")
+                if got.status_code == 200 and got.json().get("recorded"):
+                    break
+            lat.append(time.perf_counter() - t)
+    print(
+        f"submission to fused value readable, 30-station events, {len(lat)} samples: "
+        f"p50 {pct(lat, 50):.0f} ms, p99 {pct(lat, 99):.0f} ms (target p99 <= 1000 ms)"
+    )
+
+
+def rate_phase(url: str, texts: list[str], headers: dict[str, str]) -> float:
+    """Seconds to submit every body from 4 concurrent clients."""
+
+    async def feed() -> float:
+        q = list(texts)
+        async with httpx.AsyncClient(base_url=url, timeout=120) as c:
+
+            async def w() -> None:
+                while q:
+                    r = await c.post("/v1/submissions", content=q.pop(), headers=headers)
+                    assert r.status_code == 201, r.text
+
+            t = time.perf_counter()
+            await asyncio.gather(*(w() for _ in range(4)))
+            return time.perf_counter() - t
+
+    return asyncio.run(feed())
+
+
+def ingest_seconds(work: Path, texts: list[str], store: Path) -> float:
+    """Wall time of one ``magfuse ingest`` process over the bodies as files."""
+    files = []
+    for k, text in enumerate(texts):
+        f = work / f"body{k:04d}.csv"
+        f.write_text(text)
+        files.append(str(f))
+    env = {**os.environ, "PYTHONPATH": str(REPO)}
+    cmd = [sys.executable, "-c", "from fusion.cli.app import main; main()", "ingest", *files]
+    t = time.perf_counter()
+    subprocess.run([*cmd, "--store", str(store)], check=True, env=env, capture_output=True)
+    return time.perf_counter() - t
+
+
+def prepare_store(root: Path, args: argparse.Namespace) -> None:
+    """Copy ``--store`` to ``root``, or build a synthetic one there."""
+    if args.store is not None:
+        shutil.copytree(args.store, root)
+    else:
+        t = time.perf_counter()
+        _sibling("event_view_speed").ensure_store(root, args.rows, args.seed)
+        print(f"built a {args.rows:,}-row store in {time.perf_counter() - t:.0f} s")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     ap.add_argument("--store", type=Path, help="existing store with an active ML model (copied)")
@@ -223,121 +321,31 @@ def main() -> None:
     work = Path(tempfile.mkdtemp(prefix="magfuse-service-bench-"))
     try:
         root = work / "store"
-        if args.store is not None:
-            shutil.copytree(args.store, root)
-        else:
-            t = time.perf_counter()
-            _sibling("event_view_speed").ensure_store(root, args.rows, args.seed)
-            print(f"built a {args.rows:,}-row store in {time.perf_counter() - t:.0f} s")
+        prepare_store(root, args)
         clean = work / "clean"
         shutil.copytree(root, clean)  # for the ingest comparison
-        store = StationMagnitudeStore.open(root, create=False)
-        n_rows = store.summary().rows_current
+        n_rows = StationMagnitudeStore.open(root, create=False).summary().rows_current
         reg = ModelRegistry(root)
-        params = reg.load_parameters(reg.active("ML"))
-        stations = sorted({str(s) for s in params.station_ids})
+        stations = sorted({str(s) for s in reg.load_parameters(reg.active("ML")).station_ids})
         token = TokenBook(root).add("bench", "submit")
         headers = {"Authorization": f"Bearer {token}", "Content-Type": "text/csv"}
+        t0 = pd.Timestamp("2030-01-01", tz="UTC")
+        later = t0 + pd.Timedelta(days=30)
+        bodies = synthetic_events(stations, args.bodies, 30, args.seed + 1, later)
+        texts = [b.to_csv(index=False) for b in bodies]
         proc, url = start(root, work / "server.log")
         try:
             print(f"store: {n_rows:,} station magnitudes; server {url}")
-            ids = event_ids(root, args.reads + 100, args.seed)
-            hot, cold = ids[:100], ids[100 : 100 + min(args.reads, 300)]
-            paths = [f"/v1/events/{i}" for i in cold]
-            ev = asyncio.run(closed_loop(url, paths, args.clients, args.max_seconds))
-            print(
-                f"one-event read of distinct events (nothing cached), {args.clients} clients, "
-                f"{len(ev)} requests: p50 {pct(ev, 50):.1f} ms, p99 {pct(ev, 99):.1f} ms"
-            )
-            rng = np.random.default_rng(args.seed)
-            hot_paths = [f"/v1/events/{hot[k]}" for k in rng.integers(0, len(hot), args.reads)]
-            asyncio.run(closed_loop(url, [f"/v1/events/{h}" for h in hot], args.clients, 60))
-            ev = asyncio.run(closed_loop(url, hot_paths, args.clients, args.max_seconds))
-            st = asyncio.run(
-                closed_loop(
-                    url, ["/static/magfuse.css"] * args.reads, args.clients, args.max_seconds
-                )
-            )
-            print(
-                f"one-event read of 100 recent events (a duty screen; explanations cached), "
-                f"{args.clients} clients, {len(ev)} requests: "
-                f"p50 {pct(ev, 50):.1f} ms, p99 {pct(ev, 99):.1f} ms (target p99 <= 50 ms)"
-            )
-            print(
-                f"static file, same stack and clients, {len(st)} requests: "
-                f"p50 {pct(st, 50):.1f} ms, p99 {pct(st, 99):.1f} ms; "
-                f"ratio event/static p50 {pct(ev, 50) / pct(st, 50):.1f}, "
-                f"p99 {pct(ev, 99) / pct(st, 99):.1f}"
-            )
-            t0 = pd.Timestamp("2030-01-01", tz="UTC")
-            lat_events = synthetic_events(stations, args.latency_events, 30, args.seed, t0)
-            lat: list[float] = []
-            with httpx.Client(base_url=url, timeout=60) as c:
-                deadline = time.monotonic() + args.max_seconds
-                for frame in lat_events:
-                    if time.monotonic() > deadline:
-                        break
-                    eid = str(frame["event_id"].iloc[0])
-                    t = time.perf_counter()
-                    r = c.post(
-                        "/v1/submissions", content=frame.to_csv(index=False), headers=headers
-                    )
-                    assert r.status_code == 201, r.text
-                    while True:
-                        got = c.get(f"/v1/events/{eid}")
-                        if got.status_code == 200 and got.json().get("recorded"):
-                            break
-                    lat.append(time.perf_counter() - t)
-            print(
-                f"submission to fused value readable, 30-station events, {len(lat)} samples: "
-                f"p50 {pct(lat, 50):.0f} ms, p99 {pct(lat, 99):.0f} ms (target p99 <= 1000 ms)"
-            )
-            bodies = synthetic_events(
-                stations, args.bodies, 30, args.seed + 1, t0 + pd.Timedelta(days=30)
-            )
-            texts = [b.to_csv(index=False) for b in bodies]
-
-            async def feed() -> float:
-                q = list(texts)
-                async with httpx.AsyncClient(base_url=url, timeout=120) as c:
-
-                    async def w() -> None:
-                        while q:
-                            r = await c.post("/v1/submissions", content=q.pop(), headers=headers)
-                            assert r.status_code == 201, r.text
-
-                    t = time.perf_counter()
-                    await asyncio.gather(*(w() for _ in range(4)))
-                    return time.perf_counter() - t
-
-            dt = asyncio.run(feed())
-            rows = sum(len(b) for b in bodies)
+            read_phase(url, root, args)
+            events = synthetic_events(stations, args.latency_events, 30, args.seed, t0)
+            latency_phase(url, events, headers, args.max_seconds)
+            dt = rate_phase(url, texts, headers)
         finally:
             proc.terminate()
             proc.wait(timeout=30)
         server_side(work / "server.log")
-        files = []
-        for k, text in enumerate(texts):
-            f = work / f"body{k:04d}.csv"
-            f.write_text(text)
-            files.append(str(f))
-        env = {**os.environ, "PYTHONPATH": str(REPO)}
-        t = time.perf_counter()
-        subprocess.run(
-            [
-                sys.executable,
-                "-c",
-                "from fusion.cli.app import main; main()",
-                "ingest",
-                *files,
-                "--store",
-                str(clean),
-            ],
-            check=True,
-            env=env,
-            capture_output=True,
-        )
-        dt_ingest = time.perf_counter() - t
+        dt_ingest = ingest_seconds(work, texts, clean)
+        rows = sum(len(b) for b in bodies)
         print(
             f"sustained submission: {rows:,} rows in {len(bodies)} submissions from 4 clients: "
             f"{rows / dt:,.0f} rows/s (each event fused on arrival); magfuse ingest of the same "
