@@ -31,6 +31,7 @@ __all__ = [
     "NetworkConfig",
     "NightlyConfig",
     "PairConfig",
+    "ServiceConfig",
     "StoreConfig",
     "load_config",
 ]
@@ -135,6 +136,18 @@ class NightlyConfig(_Section):
     dry_run_top: int = Field(10, ge=1)
 
 
+class ServiceConfig(_Section):
+    """The always-on HTTP service (``magfuse serve``; fusion/service)."""
+
+    host: str = "127.0.0.1"
+    port: int = Field(8470, ge=1, le=65535)
+    anonymous_read_on_loopback: bool = True
+    max_body_bytes: int = Field(16 * 2**20, ge=1024)
+    page_size: int = Field(100, ge=1, le=10_000)
+    recent_events: int = Field(50, ge=1, le=10_000)
+    stream_heartbeat_s: float = Field(15.0, gt=0.0)
+
+
 class MagfuseConfig(_Section):
     """The whole configuration; every section has defaults, so ``MagfuseConfig()`` is valid."""
 
@@ -147,6 +160,7 @@ class MagfuseConfig(_Section):
     network: NetworkConfig = NetworkConfig()
     censoring: CensoringConfig = CensoringConfig()
     nightly: NightlyConfig = NightlyConfig()
+    service: ServiceConfig = ServiceConfig()
 
 
 #: Where the annotated default configuration lives in the repository (for messages).

@@ -135,6 +135,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "commands_output",
     "commands_nightly",
     "commands_demo",
+    "commands_service",
 )
 
 

@@ -1224,7 +1224,10 @@ def _event_diagnostics(
         n_eff = 1.0 / np.bincount(ev, weights=w * w, minlength=n_events)
     chi2 = np.where(counts >= 2, chi2, np.nan)
     n_eff[counts == 0] = np.nan
-    prior_share = np.bincount(ev, weights=w * rp.prior_row[rs.rows], minlength=n_events)
+    # float even when no event has a detection (bincount of nothing is an int array)
+    prior_share = np.bincount(ev, weights=w * rp.prior_row[rs.rows], minlength=n_events).astype(
+        float
+    )
     prior_share[counts == 0] = np.nan
     _, infl_row = _group_argmax(ev, np.abs(gls.influence), counts, starts)
     # Signed, as in the rows: influence = M̂ − M̂^(−i) of the station with the largest |influence|.

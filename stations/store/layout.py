@@ -35,7 +35,7 @@ INDEX_DIR: Final = "index"
 #: Folders whose uncommitted files a writer removes (never anything outside them).
 OWNED_DIRS: Final = (DATA_DIR, QUARANTINE_DIR, INDEX_DIR)
 #: Folders other writers keep under the same root and the same lock; the store never touches them.
-RESERVED_FOR_OTHERS: Final = ("models", "fused", "nightly")
+RESERVED_FOR_OTHERS: Final = ("models", "fused", "nightly", "service")
 #: Version of the directory layout and manifest format (the record schema has its own version).
 LAYOUT_VERSION: Final = 1
 #: Suffix of a file being written; it is renamed to its final name once complete and synced.

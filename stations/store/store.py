@@ -505,6 +505,33 @@ class StationMagnitudeStore:
         )
         return table.take(order).to_pandas()
 
+    def events(
+        self, event_ids: Sequence[str], *, magnitude_type: str | None = None
+    ) -> pd.DataFrame:
+        """Current rows of several events at once (the indexed look-up of :meth:`event`).
+
+        Unknown ids are ignored. Rows are sorted by event id, magnitude type and station.
+        """
+        ids = np.unique(np.asarray([str(e) for e in event_ids], dtype=object))
+
+        def run(m: Manifest) -> pa.Table:
+            files = [m.file(no) for no in self._files_of_events(m, ids)]
+            if magnitude_type is not None:
+                wanted = _check_type(magnitude_type)
+                files = [f for f in files if f.magnitude_type == wanted]
+            return self._drop_superseded(m, self._read_files(files, None, ids), files)
+
+        table = self._with_manifest(run).select(RECORD_SCHEMA.names)
+        order = pc.sort_indices(
+            table,
+            sort_keys=[
+                ("event_id", "ascending"),
+                ("magnitude_type", "ascending", "at_end"),
+                ("station_id", "ascending", "at_end"),
+            ],
+        )
+        return table.take(order).to_pandas()
+
     def _files_of_events(self, m: Manifest, ids_sorted: np.ndarray) -> list[int]:
         """File numbers holding rows of any of ``ids_sorted`` (sorted unique event ids)."""
         if m.event_index is None or ids_sorted.size == 0:
