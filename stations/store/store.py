@@ -519,7 +519,7 @@ class StationMagnitudeStore:
             if magnitude_type is not None:
                 wanted = _check_type(magnitude_type)
                 files = [f for f in files if f.magnitude_type == wanted]
-            return self._drop_superseded(m, self._read_files(files, None, ids), files)
+            return self._drop_superseded(m, self._read_files(m, files, None, ids), files)
 
         table = self._with_manifest(run).select(RECORD_SCHEMA.names)
         order = pc.sort_indices(
