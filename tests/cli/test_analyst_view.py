@@ -74,7 +74,7 @@ def test_every_json_output_and_file_is_strict_json_with_flags_as_lists(
     cur = _events(ls)
     one = _event_of(cur, cur["n_stations"] == 1)
     nondet = _event_of(cur, cur["n_nondetections_used"] > 0)
-    gls = _event_of(cur, cur["method"] == "robust_gls")
+    gls = _event_of(cur, cur["method"] == "robust-gls")
     common = ("--store", root, "--config", ls.config)
     outputs = {
         "store": invoke("store", "--json", "--store", root),
