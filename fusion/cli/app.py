@@ -132,6 +132,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "commands_compute",
     "commands_model",
     "commands_review",
+    "commands_check",
     "commands_output",
     "commands_nightly",
     "commands_demo",
