@@ -88,6 +88,12 @@ STATION_TABLE_COLUMNS = (
 
 #: Epoch detection rounds (detect steps, split, refit) at most.
 MAX_EPOCH_ROUNDS = 2
+#: Adjacent epochs whose fitted biases differ by at most this many standard errors of the
+#: difference are merged (docs/epochs.md; common practice, no source).
+MERGE_Z = 2.0
+#: An epoch shorter than this (days) whose neighbours' biases agree is a transient (a swarm or
+#: an aftershock sequence seen by the station), not a change: both its steps are removed.
+TRANSIENT_DAYS = 30.0
 
 
 def leave_one_out_z(obs: ObservationSet, fit: RemlEmFit) -> NDArray[np.float64]:
@@ -491,6 +497,22 @@ class StationModel(ParamsMixin):
                     units, anchor, gamma, init=warm, unit_station=unit_station
                 )
 
+        if not steps_all.empty:
+            # Adjacent epochs whose biases agree within their uncertainty are one epoch.
+            sized = epoch_step_sizes(steps_all, unit_station, unit_start, fit)
+            agree = (sized["step"].abs() <= MERGE_Z * sized["step_se"]).to_numpy(bool).copy()
+            agree |= transient_steps(steps_all, sized, max_days=TRANSIENT_DAYS, z=MERGE_Z)
+            if agree.any():
+                steps_all = steps_all[~agree].reset_index(drop=True)
+                split = split_epochs(obs_w, steps_all[["station_id", "change_time"]])
+                units = split.observations
+                unit_station = np.asarray(split.unit_station)
+                unit_start, unit_end = split.unit_start, split.unit_end
+                warm = _warm_from_fit(fit, units, unit_station)
+                fit, detection_table, pairs = self._fit_with_pairs(
+                    units, anchor, gamma, init=warm, unit_station=unit_station
+                )
+
         global_test = None
         if self.detect_pairs and self.global_test_replicates > 0:
             global_test = self._global_test(units, fit, anchor, gamma, unit_station)
@@ -523,7 +545,9 @@ class StationModel(ParamsMixin):
             if detection_table is not None
             else pd.DataFrame(columns=list(TABLE_COLUMNS))
         )
-        self.epoch_table_ = steps_all.reset_index(drop=True)
+        self.epoch_table_ = _with_step_sizes(
+            steps_all.reset_index(drop=True), unit_station, unit_start, fit
+        )
         self.global_test_ = global_test
         self.n_iter_ = fit.n_iter
         self.converged_ = fit.converged
@@ -773,3 +797,106 @@ def _station_table(params: StationParameters, fit: RemlEmFit) -> pd.DataFrame:
         },
         columns=list(STATION_TABLE_COLUMNS),
     )
+
+
+def epoch_step_sizes(
+    steps: pd.DataFrame,
+    unit_station: NDArray[Any],
+    unit_start: NDArray[np.datetime64],
+    fit: RemlEmFit,
+) -> pd.DataFrame:
+    """Fitted size of each step: the biases of the epochs on either side of it.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Aligned with ``steps``: ``bias_before``, ``bias_after`` (magnitude units), ``step``
+        (after − before) and ``step_se`` (sqrt(Var b̂_before + Var b̂_after), independent
+        epochs). NaN where an epoch is not found.
+    """
+    units = pd.DataFrame(
+        {
+            "station_id": np.asarray(unit_station).astype(str),
+            "start": pd.to_datetime(np.asarray(unit_start)),
+            "bias": fit.bias,
+            "var": fit.bias_var,
+        }
+    )
+    units = units.sort_values(["station_id", "start"], na_position="first", kind="stable")
+    prev = units.groupby("station_id")[["bias", "var"]].shift(1)
+    units = units.assign(bias_prev=prev["bias"], var_prev=prev["var"]).dropna(subset=["start"])
+    key = pd.DataFrame(
+        {
+            "station_id": steps["station_id"].astype(str).to_numpy(),
+            "start": pd.to_datetime(steps["change_time"]).to_numpy(),
+        }
+    )
+    m = key.merge(units, on=["station_id", "start"], how="left")
+    step = (m["bias"] - m["bias_prev"]).to_numpy(float)
+    return pd.DataFrame(
+        {
+            "bias_before": m["bias_prev"].to_numpy(float),
+            "bias_after": m["bias"].to_numpy(float),
+            "step": step,
+            "step_se": np.sqrt(m["var"].to_numpy(float) + m["var_prev"].to_numpy(float)),
+        },
+        index=steps.index,
+    )
+
+
+def _with_step_sizes(
+    steps: pd.DataFrame,
+    unit_station: NDArray[Any],
+    unit_start: NDArray[np.datetime64],
+    fit: RemlEmFit,
+) -> pd.DataFrame:
+    """The step table with the fitted sizes; ``direction`` follows the fitted step."""
+    if steps.empty:
+        out = steps.copy()
+        for col in ("bias_before", "bias_after", "step", "step_se"):
+            out[col] = pd.Series(dtype=float)
+        return out
+    sized = epoch_step_sizes(steps, unit_station, unit_start, fit)
+    out = pd.concat([steps, sized], axis=1)
+    fitted = np.sign(sized["step"].to_numpy(float))
+    out["direction"] = np.where(np.isfinite(fitted) & (fitted != 0), fitted, out["direction"])
+    out["direction"] = out["direction"].astype(np.int64)
+    return out
+
+
+def transient_steps(
+    steps: pd.DataFrame, sized: pd.DataFrame, *, max_days: float, z: float
+) -> NDArray[np.bool_]:
+    """Steps that bound a short epoch between two epochs whose biases agree.
+
+    Consecutive steps k, k + 1 of one station less than ``max_days`` apart, with
+    |b̂ before k − b̂ after k + 1| ≤ z · sqrt(se_k² + se_{k+1}²) (a conservative SE: the middle
+    epoch's variance counts twice), are both marked (docs/epochs.md).
+
+    Parameters
+    ----------
+    steps : pandas.DataFrame
+        ``station_id`` and ``change_time`` per step.
+    sized : pandas.DataFrame
+        :func:`epoch_step_sizes` of ``steps`` (same index).
+    """
+    n = len(steps)
+    out = np.zeros(n, dtype=bool)
+    if n < 2:
+        return out
+    t = pd.to_datetime(steps["change_time"]).to_numpy(dtype="datetime64[us]")
+    sid = steps["station_id"].astype(str).to_numpy()
+    order = np.lexsort((t, sid))
+    t, sid = t[order], sid[order]
+    before = sized["bias_before"].to_numpy(float)[order]
+    after = sized["bias_after"].to_numpy(float)[order]
+    se = sized["step_se"].to_numpy(float)[order]
+    same = sid[1:] == sid[:-1]
+    short = (t[1:] - t[:-1]) < np.timedelta64(int(max_days * 86400e6), "us")
+    back = np.abs(before[:-1] - after[1:]) <= z * np.sqrt(se[:-1] ** 2 + se[1:] ** 2)
+    hit = same & short & back
+    mark = np.zeros(n, dtype=bool)
+    mark[:-1] |= hit
+    mark[1:] |= hit
+    out[order] = mark
+    return out

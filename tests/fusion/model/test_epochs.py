@@ -165,7 +165,15 @@ def test_detector_equals_plain_loop(
         series[rng.random(r.size) < 0.02] *= 6.0  # outliers exercise the clip
         z[r] = series
     res = detect_bias_steps(
-        obs, z, k=0.5, h=h, min_events=m, max_steps=max_steps, reference=reference, clip=clip
+        obs,
+        z,
+        k=0.5,
+        h=h,
+        min_events=m,
+        max_steps=max_steps,
+        reference=reference,
+        clip=clip,
+        confirm=False,
     )
     expected = []
     for i, r in enumerate(rows):
@@ -198,7 +206,7 @@ def test_paths_expose_the_alarm_crossing() -> None:
     z = np.full(obs.n_obs, np.nan)
     z[rows[0]] = rng.standard_normal(300) + np.r_[np.zeros(150), np.full(150, 1.5)]
     z[rows[1]] = rng.standard_normal(200)
-    res = detect_bias_steps(obs, z, h=8.0)
+    res = detect_bias_steps(obs, z, h=8.0, confirm=False)
     assert list(res.table["station_id"]) == ["XX.S00."]
     p = res.path("XX.S00.")
     first = p[p["segment"] == 0]
@@ -249,7 +257,7 @@ def test_simulated_bias_step_is_found(h: float, max_steps: int) -> None:
     for seed in range(100, 104):
         net = simulate_network(SimulationConfig(bias_step=0.3), seed=seed)
         z = _true_z(net)
-        res = detect_bias_steps(net.observations, z, h=h, max_steps=max_steps)
+        res = detect_bias_steps(net.observations, z, h=h, max_steps=max_steps, confirm=False)
         cfg = net.config
         step = np.datetime64(cfg.start, "us") + np.timedelta64(
             int(cfg.bias_step_day * 86400e6), "us"
@@ -273,8 +281,8 @@ def test_false_alarm_rate_without_step_is_as_documented() -> None:
         net = simulate_network(SimulationConfig(outlier_rate=0.0), seed=seed)
         z = _true_z(net)
         rows += int(np.isfinite(z).sum())
-        alarms5 += len(detect_bias_steps(net.observations, z).table)
-        alarms8 += len(detect_bias_steps(net.observations, z, h=8.0).table)
+        alarms5 += len(detect_bias_steps(net.observations, z, confirm=False).table)
+        alarms8 += len(detect_bias_steps(net.observations, z, h=8.0, confirm=False).table)
     rate5 = alarms5 / rows
     assert 0.6 < rate5 / (2.0 / siegmund_arl0(0.5, 5.0)) < 1.1
     assert alarms8 / rows < 3.0 * 2.0 / siegmund_arl0(0.5, 8.0)
@@ -286,7 +294,9 @@ def test_model_reference_is_the_literal_cusum() -> None:
     obs, rows = _series_obs([120], rng)
     z = np.full(obs.n_obs, np.nan)
     z[rows[0]] = rng.standard_normal(120) + 0.2
-    res = detect_bias_steps(obs, z, reference="model", clip=None, h=1e9, serial_correlation=False)
+    res = detect_bias_steps(
+        obs, z, reference="model", clip=None, h=1e9, serial_correlation=False, confirm=False
+    )
     p = res.path("XX.S00.")
     lp, ln = _loop_cusum(z[rows[0]][20:], 0.5)
     np.testing.assert_allclose(p["cusum_pos"].to_numpy()[20:], lp, atol=1e-10)
@@ -351,7 +361,7 @@ def test_split_epochs_assigns_rows_like_station_parameters() -> None:
 
 def test_split_epochs_from_a_detection() -> None:
     net = simulate_network(SimulationConfig(bias_step=0.3), seed=101)
-    res = detect_bias_steps(net.observations, _true_z(net), h=8.0)
+    res = detect_bias_steps(net.observations, _true_z(net), h=8.0, confirm=False)
     split = split_epochs(net.observations, res)
     assert split.observations.n_stations == net.observations.n_stations + len(res.table)
     counts = split.observations.station_counts()
