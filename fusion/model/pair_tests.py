@@ -1004,6 +1004,15 @@ def global_independence_test(
     weights summing to one, so M_j cancels), so with a ``fitted`` that returns the generating
     parameters G and G* are exchangeable under the model and p is exactly uniform on
     {1/(B+1), …, 1}. Flagged pairs are part of the null model, not of G.
+
+    Measured (bench/global_test_rate.py): with the station model's own refits, 200 networks
+    simulated under the model rejected at level 0.05 at rate 0.035 (B = 39). The test runs on
+    the detected readings only, before non-detections enter the fit, so readings kept only
+    above a detection threshold break its null: the demo generator does this on purpose
+    (sample_events/generate_demo.py, ``detected = candidate & (m_read >= threshold)``), and
+    the test rejects there (3 of 4 generator seeds, G/mean G* = 1.24); with the thresholds
+    lowered so that almost every reading is kept it rejects in 0 of 4 (G/mean G* = 0.98), and
+    without the outlier readings it still rejects (docs/validation.md).
     """
     func = "global_independence_test"
     K = obs.n_stations
