@@ -91,6 +91,7 @@ class DryRunReport:
     top_events: pd.DataFrame
     policy: dict[str, float] = field(default_factory=dict)
     censoring: dict[str, Any] = field(default_factory=dict)
+    agreement: dict[str, Any] | None = None
 
     def within_policy(
         self, *, max_weight_share_change: float, max_bias_change: float
@@ -113,6 +114,8 @@ class DryRunReport:
                         f"bias of {worst_b['station_id']} moves by "
                         f"{worst_b['bias_change']:+.3f} (limit {max_bias_change:g})"
                     )
+        if self.agreement and self.agreement.get("worse_than_active"):
+            reasons.append(str(self.agreement["reason"]))
         return (not reasons, reasons)
 
     def to_dict(self) -> dict[str, Any]:
@@ -142,6 +145,7 @@ class DryRunReport:
             "top_events": records(self.top_events),
             "censoring": self.censoring,
             "policy": self.policy,
+            "agreement": self.agreement,
         }
 
     def render_text(self, *, max_stations: int = 25) -> str:
@@ -184,6 +188,7 @@ class DryRunReport:
             more = count(len(self.stations) - max_stations, "more station")
             lines.append(f"... {more} (--json)")
         lines += _censoring_lines(self.censoring)
+        lines += _agreement_lines(self.agreement)
         if len(self.top_events):
             lines += ["", "events that would move most:"]
             for e in self.top_events.to_dict(orient="records"):
@@ -221,6 +226,55 @@ def _censoring_lines(cens: dict[str, Any]) -> list[str]:
             text += f"; {c['n_likely_biased_high']:,} likely-biased-high"
         lines.append(text)
     return lines
+
+
+def _agreement_lines(agreement: dict[str, Any] | None) -> list[str]:
+    """Text lines of the label-free split-half check (:mod:`fusion.workflows.checking`)."""
+    if not agreement:
+        return []
+    sh = agreement["split_half"]
+    lines = [
+        "",
+        f"split-half agreement on {sh['n_events']:,} events, {len(sh['seeds'])} random splits "
+        "(SD of the halves' difference; smaller is better):",
+    ]
+    for e in sh["estimators"]:
+        spread = e["agreement_sd_spread"]
+        lines.append(
+            f"  {e['estimator']:<34} {e['agreement_sd']:.4f}"
+            + (f" ± {spread:.4f}" if spread is not None else "")
+            + f"  ({e['ratio']:.3f} of the station-corrected mean)"
+        )
+    return lines
+
+
+def _agreement(
+    obs: Any, registry: ModelRegistry, cand: ModelVersion, active: ModelVersion | None
+) -> dict[str, Any] | None:
+    """The label-free check of the candidate beside the active model on the dry-run events;
+    None when the window has too few events with four stations."""
+    from fusion.workflows.checking import check_observations
+    from stations.errors import InsufficientDataError
+
+    models = {cand.version_id: registry.load_parameters(cand)}
+    if active is not None:
+        models[active.version_id] = registry.load_parameters(active)
+    try:
+        rep = check_observations(
+            obs,
+            models,
+            examined=cand.version_id,
+            active=active.version_id if active is not None else None,
+            seeds=_AGREEMENT_SEEDS,
+        )
+    except InsufficientDataError:
+        return None
+    d = rep.to_dict()
+    return {k: d[k] for k in ("split_half", "worse_than_active", "reason")}
+
+
+#: Random splits of the split-half check in the dry run.
+_AGREEMENT_SEEDS = 5
 
 
 def _num(value: Any) -> str:
@@ -396,6 +450,7 @@ def dry_run(
         "before": censoring_summary(before.events) if before is not None else None,
         "after": censoring_summary(after.events),
     }
+    agreement = _agreement(obs, registry, cand, active)
     return DryRunReport(
         magnitude_type=mtype,
         active_version=active_id,
@@ -408,6 +463,7 @@ def dry_run(
         top_events=top_events,
         policy=policy,
         censoring=censoring,
+        agreement=agreement,
     )
 
 
