@@ -6,7 +6,7 @@ Every axis is labelled with its unit; every colour has one meaning
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -143,9 +143,12 @@ class StationPanelData:
         Per unit: intercept, slope, x_min, x_max of the fitted trend (NaN: none); distance in
         log10 km.
     alarms : ndarray of datetime64[us]
-        Drift-alarm times of the station.
+        Drift-alarm times of the station (when the alarm fired, after the change).
     level : float
         Level of the bias interval, a fraction.
+    change_spans : ndarray of datetime64[us], shape (n, 2)
+        Interval of each estimated change time (docs/epochs.md); the epoch line is drawn at
+        the maximum-likelihood change time, the start of the new epoch.
     """
 
     station_id: str
@@ -166,6 +169,9 @@ class StationPanelData:
     mag_line: NDArray[np.float64]
     alarms: NDArray[np.datetime64]
     level: float
+    change_spans: NDArray[np.datetime64] = field(
+        default_factory=lambda: np.zeros((0, 2), dtype="datetime64[us]")
+    )
 
 
 def _mixture_density(grid: NDArray[np.float64], var: NDArray[np.float64]) -> NDArray[np.float64]:
@@ -264,9 +270,19 @@ def _offset_panel(ax_t: Any, d: StationPanelData) -> None:
                 lw=0.8,
                 label="epoch start" if u > 0 else None,
             )
+    for i, (lo, hi) in enumerate(d.change_spans):
+        if not (np.isnat(lo) or np.isnat(hi)):
+            ax_t.axvspan(
+                lo,
+                hi,
+                color=ROLE["epoch"],
+                alpha=0.15,
+                lw=0,
+                label="likely change time (95 % interval)" if i == 0 else None,
+            )
     for i, t in enumerate(d.alarms):
         ax_t.axvline(
-            t, color=ROLE["alarm"], ls=":", lw=1.2, label="drift alarm" if i == 0 else None
+            t, color=ROLE["alarm"], ls=":", lw=1.2, label="drift alarm fired" if i == 0 else None
         )
     ax_t.set_xlabel("origin time (UTC)")
     ax_t.set_ylabel(f"station − network ({_MAG})")

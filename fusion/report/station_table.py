@@ -37,7 +37,7 @@ uncalibrated          input flag
 flags                 ';'-joined :class:`StationFlag` values
 partners              correlated partners with ρ̂ and its interval, '; '-joined
 n_drift_alarms        drift alarms whose alarm time lies in the unit's epoch
-drift_alarms          'change → alarm (up/down)' dates, '; '-joined
+drift_alarms          'change DATE (between DATE and DATE), up/down STEP ± SE; alarm DATE', '; '-joined
 ===================== =====================================================================
 
 Trend t ratios and the |t| > 3 rule: :mod:`fusion.model.diagnostics`. ``residual-offset`` uses the
@@ -243,6 +243,14 @@ def _drift(inputs: ReportInputs) -> tuple[NDArray[np.int64], NDArray[np.object_]
             "change": _utc(ep, "change_time").to_numpy(),
             "alarm": _utc(ep, "alarm_time").to_numpy(),
             "direction": _f(ep, "direction", 0.0),
+            "step": _f(ep, "step", np.nan),
+            "step_se": _f(ep, "step_se", np.nan),
+            "low": _utc(ep, "change_time_low").to_numpy()
+            if "change_time_low" in ep.columns
+            else pd.NaT,
+            "high": _utc(ep, "change_time_high").to_numpy()
+            if "change_time_high" in ep.columns
+            else pd.NaT,
             "a": np.arange(len(ep)),
         }
     )
@@ -256,14 +264,35 @@ def _drift(inputs: ReportInputs) -> tuple[NDArray[np.int64], NDArray[np.object_]
     if not len(chosen):
         return n, text
     chosen = chosen.sort_values(["k", "change"])
-    word = np.where(chosen["direction"].to_numpy() > 0, "up", "down")
+    step = chosen["step"].to_numpy(dtype=float)
+    fitted = np.isfinite(step) & (step != 0.0)
+    word = np.where(
+        np.where(fitted, step, chosen["direction"].to_numpy(dtype=float)) > 0, "up", "down"
+    )
+    size = np.where(
+        fitted,
+        [f" {v:+.2f} ± {e:.2f}" for v, e in zip(step, chosen["step_se"].to_numpy(float), strict=True)],
+        "",
+    )
+
+    def day(col: str) -> NDArray[np.object_]:
+        t = pd.to_datetime(chosen[col], utc=True)
+        return t.dt.strftime("%Y-%m-%d").fillna("?").to_numpy().astype(object)
+
+    span = np.where(
+        chosen["low"].notna().to_numpy(),
+        " (between " + day("low") + " and " + day("high") + ")",
+        "",
+    )
     label = (
-        chosen["change"].dt.strftime("%Y-%m-%d").to_numpy().astype(object)
-        + " → "
-        + chosen["alarm"].dt.strftime("%Y-%m-%d").to_numpy().astype(object)
-        + " ("
+        "change "
+        + day("change")
+        + span.astype(object)
+        + ", "
         + word.astype(object)
-        + ")"
+        + size.astype(object)
+        + "; alarm "
+        + day("alarm")
     )
     k = chosen["k"].to_numpy(dtype=np.int64)
     n = np.bincount(k, minlength=K).astype(np.int64)
@@ -471,7 +500,7 @@ STATION_REPORT_SCHEMA: Final = pa.schema(
         _fld("flags", pa.string(), None, "';'-joined station flags (see the notes)"),
         _fld("partners", pa.string(), None, "correlated partners with rho"),
         _fld("n_drift_alarms", pa.int64(), None, "CUSUM alarms in the epoch"),
-        _fld("drift_alarms", pa.string(), None, "change -> alarm dates"),
+        _fld("drift_alarms", pa.string(), None, "estimated change time with interval, fitted step, alarm date"),
     ],
     metadata={
         "magfuse.schema": "station_report",

@@ -20,6 +20,7 @@ fetched), so it opens offline and can be mailed as one file. Its parts, in order
 
 from __future__ import annotations
 
+import dataclasses
 import re
 import time
 from collections.abc import Mapping
@@ -609,6 +610,9 @@ def _station_section(
     data, rows = _station_panel(
         s, units, st, jr, alarms, cx.level, outlier_weight, cx.min_trend_rows
     )
+    spans = _change_spans_by_station(cx.win)
+    if s in spans:
+        data = dataclasses.replace(data, change_spans=spans[s])
     pg.add(f'<h3 id="sec{i}">{esc(s)}</h3>')
     flags = sorted({f for u in units for f in str(st["flags"].iloc[u]).split(";") if f})
     if flags:
@@ -854,6 +858,22 @@ def _alarms_by_station(inputs: ReportInputs) -> dict[str, NDArray[np.datetime64]
     }
 
 
+def _change_spans_by_station(inputs: ReportInputs) -> dict[str, NDArray[np.datetime64]]:
+    """Interval of each estimated change time per station (shape (n, 2)), when given."""
+    ep = inputs.epochs
+    if not len(ep) or "change_time_low" not in ep.columns:
+        return {}
+    lo = pd.to_datetime(ep["change_time_low"], utc=True).dt.tz_localize(None)
+    hi = pd.to_datetime(ep["change_time_high"], utc=True).dt.tz_localize(None)
+    frame = pd.DataFrame(
+        {"s": ep["station_id"].astype(str).to_numpy(), "lo": lo.to_numpy(), "hi": hi.to_numpy()}
+    )
+    return {
+        str(k): g[["lo", "hi"]].to_numpy(dtype="datetime64[us]")
+        for k, g in frame.groupby("s", sort=True)
+    }
+
+
 def _drift_rows(inputs: ReportInputs) -> str:
     ep = inputs.epochs
     if not len(ep):
@@ -875,6 +895,19 @@ def _drift_rows(inputs: ReportInputs) -> str:
         return fmt(pd.to_numeric(ep[name]).to_numpy()[order], spec)
 
     direction = pd.to_numeric(ep["direction"]).to_numpy()[order]
+    has_span = "change_time_low" in ep.columns
+    between = (
+        tcol("change_time_low") + " – " + tcol("change_time_high")
+        if has_span
+        else np.full(order.shape[0], "", dtype=object)
+    )
+    if "step" in ep.columns:
+        step = pd.to_numeric(ep["step"]).to_numpy()[order]
+        step_se = pd.to_numeric(ep["step_se"]).to_numpy()[order]
+        size = fmt(step, "+.3f") + " ± " + fmt(step_se, ".3f")
+        direction = np.where(np.isfinite(step) & (step != 0), np.sign(step), direction)
+    else:
+        size = np.full(order.shape[0], "", dtype=object)
     return table(
         [
             (
@@ -882,9 +915,11 @@ def _drift_rows(inputs: ReportInputs) -> str:
                 np.array([esc(s) for s in ep["station_id"].to_numpy()[order]], dtype=object),
                 True,
             ),
-            ("change (UTC)", tcol("change_time"), True),
-            ("alarm (UTC)", tcol("alarm_time"), True),
+            ("most likely change (UTC)", tcol("change_time"), True),
+            ("change between (95 %)", between, True),
+            ("alarm fired (UTC)", tcol("alarm_time"), True),
             ("bias moved", np.where(direction > 0, "up", "down"), True),
+            ("step (fitted epochs)", size, False),
             ("readings before", num("n_before", ".0f"), False),
             ("readings after", num("n_after", ".0f"), False),
             ("CUSUM peak", num("peak", ".1f"), False),

@@ -312,3 +312,26 @@ def test_minimal_inputs_without_optional_columns() -> None:
     assert tab["n_events"].isna().all()
     assert tab["distance_t"].isna().all()
     assert (tab["flags"] == "").all()
+
+
+def test_drift_text_reports_direction_and_size_from_the_fitted_epochs(planted) -> None:  # type: ignore[no-untyped-def]
+    """The alarm's own CUSUM direction (-1 here) is not what the report says: the fitted step
+    (+0.25, bias went up) is, with its size, the change-time interval and the alarm date."""
+    ep = planted.inputs.epochs
+    one = ep[ep["station_id"] == STEP_STATION].head(1).copy()
+    change = pd.to_datetime(one["change_time"], utc=True)
+    one = one.assign(
+        direction=-1,
+        step=0.25,
+        step_se=0.04,
+        change_time_low=change - pd.Timedelta(days=6),
+        change_time_high=change + pd.Timedelta(days=8),
+    )
+    inputs = dataclasses.replace(planted.inputs, epochs=one)
+    tab = station_reliability_table(inputs.validated())
+    text = tab.loc[tab["station_id"] == STEP_STATION, "drift_alarms"].str.cat(sep="")
+    low = (change - pd.Timedelta(days=6)).dt.strftime("%Y-%m-%d").iloc[0]
+    high = (change + pd.Timedelta(days=8)).dt.strftime("%Y-%m-%d").iloc[0]
+    assert ", up +0.25 ± 0.04" in text
+    assert f"(between {low} and {high})" in text
+    assert "down" not in text
