@@ -143,7 +143,7 @@ def random_halves(event: NDArray[np.int64], rng: np.random.Generator) -> NDArray
         Within every event the two halves differ in size by at most one.
     """
     n = event.shape[0]
-    order = np.lexsort((rng.random(n), event))
+    order = np.lexsort((np.asarray(rng.random(n), dtype=np.float64), event))
     ev_sorted = event[order]
     start = np.r_[True, ev_sorted[1:] != ev_sorted[:-1]]
     first = np.maximum.accumulate(np.where(start, np.arange(n), 0))
@@ -176,7 +176,10 @@ def half_difference(
 
 
 def station_corrections(
-    event: NDArray[np.int64], station: NDArray[np.int64], m: NDArray[np.float64], n_events: int,
+    event: NDArray[np.int64],
+    station: NDArray[np.int64],
+    m: NDArray[np.float64],
+    n_events: int,
     n_stations: int,
 ) -> NDArray[np.float64]:
     """Classical station corrections c_i = mean of m_ij − m̄_j over the station's readings.

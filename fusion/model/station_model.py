@@ -93,7 +93,7 @@ MAX_EPOCH_ROUNDS = 2
 MERGE_Z = 2.0
 #: An epoch shorter than this (days) whose neighbours' biases agree is a transient (a swarm or
 #: an aftershock sequence seen by the station), not a change: both its steps are removed.
-TRANSIENT_DAYS = 30.0
+TRANSIENT_DAYS = 60.0
 
 
 def leave_one_out_z(obs: ObservationSet, fit: RemlEmFit) -> NDArray[np.float64]:

@@ -37,7 +37,7 @@ uncalibrated          input flag
 flags                 ';'-joined :class:`StationFlag` values
 partners              correlated partners with ρ̂ and its interval, '; '-joined
 n_drift_alarms        drift alarms whose alarm time lies in the unit's epoch
-drift_alarms          'change DATE (between DATE and DATE), up/down STEP ± SE; alarm DATE', '; '-joined
+drift_alarms          'change DATE (between DATE and DATE), up/down STEP ± SE; alarm DATE'
 ===================== =====================================================================
 
 Trend t ratios and the |t| > 3 rule: :mod:`fusion.model.diagnostics`. ``residual-offset`` uses the
@@ -271,7 +271,10 @@ def _drift(inputs: ReportInputs) -> tuple[NDArray[np.int64], NDArray[np.object_]
     )
     size = np.where(
         fitted,
-        [f" {v:+.2f} ± {e:.2f}" for v, e in zip(step, chosen["step_se"].to_numpy(float), strict=True)],
+        [
+            f" {v:+.2f} ± {e:.2f}"
+            for v, e in zip(step, chosen["step_se"].to_numpy(float), strict=True)
+        ],
         "",
     )
 
@@ -500,7 +503,12 @@ STATION_REPORT_SCHEMA: Final = pa.schema(
         _fld("flags", pa.string(), None, "';'-joined station flags (see the notes)"),
         _fld("partners", pa.string(), None, "correlated partners with rho"),
         _fld("n_drift_alarms", pa.int64(), None, "CUSUM alarms in the epoch"),
-        _fld("drift_alarms", pa.string(), None, "estimated change time with interval, fitted step, alarm date"),
+        _fld(
+            "drift_alarms",
+            pa.string(),
+            None,
+            "estimated change time with interval, fitted step, alarm date",
+        ),
     ],
     metadata={
         "magfuse.schema": "station_report",

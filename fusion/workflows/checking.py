@@ -138,7 +138,11 @@ class CheckReport:
         lines = [
             f"label-free check ({self.magnitude_type})",
             f"  readings {ag.n_rows:,} of {ag.n_events:,} events"
-            + (f" between {self.window_start[:19]} and {self.window_end[:19]}" if self.window_start else ""),
+            + (
+                f" between {self.window_start[:19]} and {self.window_end[:19]}"
+                if self.window_start
+                else ""
+            ),
             "",
             f"split-half agreement over {len(ag.seeds)} random splits "
             "(SD of the two halves' difference; smaller is better):",
@@ -266,13 +270,12 @@ def check_observations(
         res = held_out_prediction(
             p.bias, p.sigma2, p.pairs, unit_obs, bias_var=p.bias_var, replicates=0, level=level
         )
-        pooled = res.pooled.set_index("method")
         rows = res.rows
         held_rows.append(
             {
                 "estimator": name,
-                "n_readings": int(len(rows)),
-                "mse": float(pooled.loc["gls", "mse"]),
+                "n_readings": len(rows),
+                "mse": _gls_mse(res.pooled),
                 "z_sd": float(rows["z"].std(ddof=1)),
                 "coverage": float(np.mean(np.abs(rows["z"]) <= _crit(level))),
             }
@@ -291,14 +294,12 @@ def check_observations(
                 }
             )
     base = det.subset(common)
-    res = held_out_prediction(
-        corr, np.ones(det.n_stations), None, base, replicates=0, level=level
-    )
+    res = held_out_prediction(corr, np.ones(det.n_stations), None, base, replicates=0, level=level)
     held_rows.append(
         {
             "estimator": CORRECTED_MEAN,
-            "n_readings": int(len(res.rows)),
-            "mse": float(res.pooled.set_index("method").loc["gls", "mse"]),
+            "n_readings": len(res.rows),
+            "mse": _gls_mse(res.pooled),
             "z_sd": float("nan"),
             "coverage": float("nan"),
         }
@@ -314,6 +315,11 @@ def check_observations(
         per_station=per_station,
         level=float(level),
     )
+
+
+def _gls_mse(pooled: pd.DataFrame) -> float:
+    """Pooled held-out MSE of the GLS prediction (magnitude units²)."""
+    return float(pooled.loc[pooled["method"] == "gls", "mse"].to_numpy(dtype=float)[0])
 
 
 def _crit(level: float) -> float:

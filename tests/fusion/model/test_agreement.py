@@ -28,8 +28,8 @@ def _direct_sd(half: np.ndarray, y: np.ndarray, w: np.ndarray, events: list[int]
     """Weighted mean of each half per event, by an explicit loop (reference)."""
     diffs = []
     for j in events:
-        a = (EVENT == j) & (half == 0)
-        b = (EVENT == j) & (half == 1)
+        a = (j == EVENT) & (half == 0)
+        b = (j == EVENT) & (half == 1)
         ma = np.sum(w[a] * y[a]) / np.sum(w[a])
         mb = np.sum(w[b] * y[b]) / np.sum(w[b])
         diffs.append(ma - mb)
@@ -76,7 +76,7 @@ def test_random_halves_differ_in_size_by_at_most_one() -> None:
 def test_station_corrections_are_mean_residuals_from_the_plain_event_mean() -> None:
     c = station_corrections(EVENT, STATION, MAG, 4, 5)
     for i in range(5):
-        res = [MAG[r] - MAG[EVENT == EVENT[r]].mean() for r in np.flatnonzero(STATION == i)]
+        res = [MAG[r] - MAG[EVENT[r] == EVENT].mean() for r in np.flatnonzero(i == STATION)]
         assert c[i] == pytest.approx(np.mean(res), rel=1e-12)
 
 

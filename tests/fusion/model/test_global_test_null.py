@@ -16,7 +16,11 @@ from fusion.model.station_model import StationModel
 
 def _p_value(mode: str, seed: int, replicates: int = 19) -> tuple[float, float]:
     cfg = SimulationConfig(
-        n_stations=25, n_events=1000, pair_rhos=(), outlier_rate=0.0, mode=mode  # type: ignore[arg-type]
+        n_stations=25,
+        n_events=1000,
+        pair_rhos=(),
+        outlier_rate=0.0,
+        mode=mode,  # type: ignore[arg-type]
     )
     sim = simulate_network(cfg, seed=seed)
     with warnings.catch_warnings():

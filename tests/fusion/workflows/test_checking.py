@@ -49,7 +49,10 @@ def test_true_parameters_agree_better_than_the_corrected_mean_and_a_wrong_model_
     # Wrong model: biases off by N(0, 0.3²) and error variances permuted across stations.
     wrong = _params(ids, sim.bias + rng.normal(0, 0.3, ids.shape[0]), rng.permutation(sim.sigma**2))
     rep = check_observations(
-        sim.observations, {"wrong": wrong, "truth": truth}, examined="wrong", active="truth",
+        sim.observations,
+        {"wrong": wrong, "truth": truth},
+        examined="wrong",
+        active="truth",
         seeds=5,
     )
     s = {r["estimator"]: r["agreement_sd"] for r in rep.agreement.summary()}
