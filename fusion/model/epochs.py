@@ -1017,6 +1017,7 @@ def split_epochs(obs: ObservationSet, steps: BiasStepResult | pd.DataFrame) -> E
     order = np.lexsort((step_t, step_st))
     step_st, step_t = step_st[order], step_t[order]
     keep = np.r_[True, (step_st[1:] != step_st[:-1]) | (step_t[1:] != step_t[:-1])]
+    keep = keep[: step_st.shape[0]]  # no steps (all merged away): no extra units
     step_st, step_t = step_st[keep], step_t[keep]
     nat = np.datetime64("NaT", "us")
     # Units: every station's first epoch, plus one per step; sorted by (station, start).

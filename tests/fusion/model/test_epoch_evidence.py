@@ -135,3 +135,16 @@ def test_confirmed_step_is_dated_by_maximum_likelihood_within_its_interval() -> 
         hi = mine["change_time_high"].to_numpy()[0]
         hits += int(lo < step <= hi)
     assert hits >= 4
+
+
+def test_split_without_steps_keeps_one_unit_per_station() -> None:
+    # After every proposed step is merged away the model re-splits with an empty step table.
+    from fusion.model.epochs import split_epochs
+
+    net = simulate_network(SimulationConfig(n_stations=6, n_events=200), seed=1)
+    empty = pd.DataFrame(
+        {"station_id": pd.Series(dtype=str), "change_time": pd.Series(dtype="datetime64[us]")}
+    )
+    split = split_epochs(net.observations, empty)
+    assert list(split.observations.station_ids) == list(net.observations.station_ids)
+    assert np.array_equal(split.observations.station, net.observations.station)
