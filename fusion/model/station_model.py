@@ -871,7 +871,8 @@ def transient_steps(
 
     Consecutive steps k, k + 1 of one station less than ``max_days`` apart, with
     |b̂ before k − b̂ after k + 1| ≤ z · sqrt(se_k² + se_{k+1}²) (a conservative SE: the middle
-    epoch's variance counts twice), are both marked (docs/epochs.md).
+    epoch's variance counts twice), are both marked (docs/epochs.md); the shortest such epochs
+    are taken first and a step is part of at most one.
 
     Parameters
     ----------
@@ -894,9 +895,13 @@ def transient_steps(
     same = sid[1:] == sid[:-1]
     short = (t[1:] - t[:-1]) < np.timedelta64(int(max_days * 86400e6), "us")
     back = np.abs(before[:-1] - after[1:]) <= z * np.sqrt(se[:-1] ** 2 + se[1:] ** 2)
-    hit = same & short & back
+    hit = np.flatnonzero(same & short & back)
+    # Shortest transients first; a step belongs to at most one transient, so the real step
+    # before a swarm is not paired with the swarm's first step.
+    gap = (t[1:] - t[:-1])[hit]
     mark = np.zeros(n, dtype=bool)
-    mark[:-1] |= hit
-    mark[1:] |= hit
+    for i in hit[np.argsort(gap, kind="stable")].tolist():  # a few candidate pairs
+        if not (mark[i] or mark[i + 1]):
+            mark[i] = mark[i + 1] = True
     out[order] = mark
     return out

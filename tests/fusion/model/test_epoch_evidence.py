@@ -99,6 +99,24 @@ def test_short_epoch_between_agreeing_epochs_is_a_transient() -> None:
     assert drop.tolist() == [True, True, False, False, False]
 
 
+def test_real_step_before_a_swarm_is_not_taken_for_a_transient() -> None:
+    from fusion.model.station_model import transient_steps
+
+    # Real step up on 07-01; a swarm pulls the bias down from 08-25 to 09-11. The epochs before
+    # 07-01 and after 08-25 happen to agree too, but the swarm's own steps are the transient.
+    t = pd.to_datetime(["2025-07-01", "2025-08-25", "2025-09-11"]).to_numpy()
+    steps = pd.DataFrame({"station_id": ["S", "S", "S"], "change_time": t})
+    sized = pd.DataFrame(
+        {
+            "bias_before": [-0.209, 0.094, -0.179],
+            "bias_after": [0.094, -0.179, 0.161],
+            "step_se": [0.05, 0.05, 0.039],
+        }
+    )
+    drop = transient_steps(steps, sized, max_days=60.0, z=2.0)
+    assert drop.tolist() == [False, True, True]
+
+
 def _true_z(net):  # type: ignore[no-untyped-def]
     obs = net.observations
     y = obs.magnitude - net.bias[obs.station]
