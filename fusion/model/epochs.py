@@ -146,6 +146,10 @@ STEP_COLUMNS = (
     "evidence",
     "threshold",
     "inflation",
+    "bias_before",
+    "bias_after",
+    "step",
+    "step_se",
 )
 PATH_COLUMNS = (
     "station_id",
@@ -171,7 +175,13 @@ class BiasStepResult:
         ``alarm_time`` (event time of the alarm row), ``direction`` (+1 bias up, −1 down),
         ``n_before``, ``n_after`` (rows of the epochs before and after the change),
         ``peak`` (largest value of the alarming CUSUM in its excursion), ``shift_z``
-        (mean z after minus mean z before, over those epochs).
+        (mean z after minus mean z before, over those epochs), ``change_time_low`` and
+        ``change_time_high`` (the change-time interval: last reading possibly before, first
+        reading surely after the change), ``evidence`` (deflated likelihood-ratio statistic),
+        ``threshold`` (evidence required), ``inflation`` (dependence factor; all NaN without
+        ``confirm``), and ``bias_before``, ``bias_after``, ``step``, ``step_se`` (NaN here;
+        the station model fills them from the fitted epochs). With ``confirm`` the direction
+        is the sign of the estimated shift.
     paths : pandas.DataFrame
         The monitored series for plotting, one row per (segment, row): ``station_id``,
         ``segment`` (0 for the first epoch), ``event_id``, ``time``, ``z``, ``x``,
@@ -964,6 +974,11 @@ def _step_table(
             "evidence": ev_stats[:, 0],
             "threshold": ev_stats[:, 1],
             "inflation": ev_stats[:, 2],
+            # Filled by the station model from the fitted epochs (fusion.model.station_model).
+            "bias_before": np.nan,
+            "bias_after": np.nan,
+            "step": np.nan,
+            "step_se": np.nan,
         }
     )
 

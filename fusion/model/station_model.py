@@ -852,12 +852,9 @@ def _with_step_sizes(
 ) -> pd.DataFrame:
     """The step table with the fitted sizes; ``direction`` follows the fitted step."""
     if steps.empty:
-        out = steps.copy()
-        for col in ("bias_before", "bias_after", "step", "step_se"):
-            out[col] = pd.Series(dtype=float)
-        return out
+        return steps
     sized = epoch_step_sizes(steps, unit_station, unit_start, fit)
-    out = pd.concat([steps, sized], axis=1)
+    out = pd.concat([steps.drop(columns=list(sized.columns), errors="ignore"), sized], axis=1)
     fitted = np.sign(sized["step"].to_numpy(float))
     out["direction"] = np.where(np.isfinite(fitted) & (fitted != 0), fitted, out["direction"])
     out["direction"] = out["direction"].astype(np.int64)
