@@ -94,6 +94,8 @@ MERGE_Z = 2.0
 #: An epoch shorter than this (days) whose neighbours' biases agree is a transient (a swarm or
 #: an aftershock sequence seen by the station), not a change: both its steps are removed.
 TRANSIENT_DAYS = 60.0
+#: Most merge-and-refit rounds.
+MERGE_ROUNDS = 3
 
 
 def leave_one_out_z(obs: ObservationSet, fit: RemlEmFit) -> NDArray[np.float64]:
@@ -497,21 +499,25 @@ class StationModel(ParamsMixin):
                     units, anchor, gamma, init=warm, unit_station=unit_station
                 )
 
-        if not steps_all.empty:
-            # Adjacent epochs whose biases agree within their uncertainty are one epoch.
+        for _ in range(MERGE_ROUNDS):
+            # Adjacent epochs whose biases agree within their uncertainty are one epoch; a
+            # refit after a merge moves the other epochs' biases, so check again.
+            if steps_all.empty:
+                break
             sized = epoch_step_sizes(steps_all, unit_station, unit_start, fit)
             agree = (sized["step"].abs() <= MERGE_Z * sized["step_se"]).to_numpy(bool).copy()
             agree |= transient_steps(steps_all, sized, max_days=TRANSIENT_DAYS, z=MERGE_Z)
-            if agree.any():
-                steps_all = steps_all[~agree].reset_index(drop=True)
-                split = split_epochs(obs_w, steps_all[["station_id", "change_time"]])
-                units = split.observations
-                unit_station = np.asarray(split.unit_station)
-                unit_start, unit_end = split.unit_start, split.unit_end
-                warm = _warm_from_fit(fit, units, unit_station)
-                fit, detection_table, pairs = self._fit_with_pairs(
-                    units, anchor, gamma, init=warm, unit_station=unit_station
-                )
+            if not agree.any():
+                break
+            steps_all = steps_all[~agree].reset_index(drop=True)
+            split = split_epochs(obs_w, steps_all[["station_id", "change_time"]])
+            units = split.observations
+            unit_station = np.asarray(split.unit_station)
+            unit_start, unit_end = split.unit_start, split.unit_end
+            warm = _warm_from_fit(fit, units, unit_station)
+            fit, detection_table, pairs = self._fit_with_pairs(
+                units, anchor, gamma, init=warm, unit_station=unit_station
+            )
 
         global_test = None
         if self.detect_pairs and self.global_test_replicates > 0:
