@@ -14,6 +14,7 @@ Usage::
 
     python bench/learn_speed.py                # 1 M and 10 M readings, each in a subprocess
     python bench/learn_speed.py --rows 1e6     # one size
+    python bench/learn_speed.py --global-test-replicates 0   # without the global test
 
 Targets (issue 14): 10 M readings within 120 s and 3 GB; no false epoch at either size.
 """
@@ -53,7 +54,7 @@ def _data(n_rows: int, seed: int = 0) -> Any:
     )
 
 
-def run_one(n_rows: int) -> dict[str, Any]:
+def run_one(n_rows: int, replicates: int | None = None) -> dict[str, Any]:
     from fusion.model.anchors import Anchor
     from fusion.model.reml_em import fit_reml_em
     from fusion.model.station_model import StationModel
@@ -69,6 +70,8 @@ def run_one(n_rows: int) -> dict[str, Any]:
         model = StationModel.from_config(
             cfg.learn, cfg.pairs, cfg.epochs, censoring=cfg.censoring, random_state=0
         )
+        if replicates is not None:
+            model.set_params(global_test_replicates=replicates)
         t = time.perf_counter()
         model.fit(obs)
         t_learn = time.perf_counter() - t
@@ -89,14 +92,25 @@ def run_one(n_rows: int) -> dict[str, Any]:
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=float, nargs="*", default=[1e6, 1e7])
+    ap.add_argument(
+        "--global-test-replicates",
+        type=int,
+        default=None,
+        help="override [pairs] global_test_replicates (0: no global test)",
+    )
     ap.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
     if a.child:
-        print(json.dumps(run_one(int(a.rows[0]))))
+        print(json.dumps(run_one(int(a.rows[0]), a.global_test_replicates)))
         return
     for n in a.rows:
         out = subprocess.run(
-            [sys.executable, __file__, "--child", "--rows", str(n)],
+            [sys.executable, __file__, "--child", "--rows", str(n)]
+            + (
+                ["--global-test-replicates", str(a.global_test_replicates)]
+                if a.global_test_replicates is not None
+                else []
+            ),
             capture_output=True,
             text=True,
             check=False,
