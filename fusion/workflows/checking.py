@@ -159,7 +159,8 @@ class CheckReport:
         lines += [
             "",
             "held-out station prediction (each reading predicted from the other stations):",
-            f"  {'estimator':<34} {'MSE':>7} {'z SD':>6} {'coverage':>9}",
+            f"  {'estimator':<34} {'MSE':>7} {'z SD':>6} {'coverage':>9}"
+            f"  (of the {100 * self.level:.0f} % interval)",
         ]
         for r in self.held_out.to_dict(orient="records"):
             cov = r["coverage"]
