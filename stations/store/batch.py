@@ -17,13 +17,15 @@ Restatements are duplicates. A row that restates the stored reading of its key i
 that carries fewer values (e.g. QuakeML after CSV: no noise threshold, distances or azimuth)
 is a duplicate when every value it does carry agrees with the stored one, floating-point
 values within half a unit in the last decimal place of the stored value
-(:func:`~stations.store.keys.rows_restate`). It does not replace the fuller stored reading,
-and values that only the restatement carries (e.g. a QuakeML contribution weight where the
-stored row has none) are not merged into it: the stored reading stays exactly as it was, so
+(:func:`~stations.store.keys.rows_restate`). It does not replace the fuller stored reading.
+Annotations of the source that only the restatement carries
+(:data:`~stations.store.keys.ANNOTATION_COLUMNS`: a QuakeML contribution weight, a formula
+name) are not merged into it: the stored reading stays exactly as it was, so
 fused magnitudes and the fusion catch-up are not disturbed by a file that says nothing new.
 The restating batch is still recorded in the manifest with its counts (its rows count as
 duplicates). A real change (a magnitude or amplitude beyond the stored precision, a flag
-flipped, a value that differs) is a revision as before.
+flipped, a value that differs, a measured value such as a noise threshold where the stored
+row had none) is a revision as before.
 """
 
 from __future__ import annotations

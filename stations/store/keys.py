@@ -17,7 +17,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from numpy.typing import NDArray
 
-__all__ = ["decimals_of", "row_codes", "rows_equal", "rows_restate"]
+__all__ = ["ANNOTATION_COLUMNS", "decimals_of", "row_codes", "rows_equal", "rows_restate"]
+
+#: Columns that annotate how the source used a reading rather than the reading itself: a
+#: value only a restatement gives here is not a change (and is not merged in).
+ANNOTATION_COLUMNS = ("source_weight", "formula")
 
 #: Largest combined code before it is compacted again (keeps the arithmetic inside int64).
 _CODE_LIMIT = 2**62
@@ -127,8 +131,9 @@ def rows_restate(new: pa.Table, stored: pa.Table, columns: Sequence[str]) -> NDA
     floating-point values within half a unit in the last decimal place of the stored value
     (a magnitude stored as ``4.337`` takes any value within 0.0005; the source rounded it to
     three places), other values exactly. A value the new row lacks (null or NaN) says nothing
-    and never counts as a change; neither does a value the stored row lacks (see the store's
-    duplicate rule in :mod:`stations.store.batch`).
+    and never counts as a change. A value the stored row lacks and the new row gives is a
+    change (e.g. a noise threshold added later), except for :data:`ANNOTATION_COLUMNS`
+    (see the store's duplicate rule in :mod:`stations.store.batch`).
 
     Returns
     -------
@@ -142,7 +147,8 @@ def rows_restate(new: pa.Table, stored: pa.Table, columns: Sequence[str]) -> NDA
         b = stored.column(name)
         if not a.type.equals(b.type):
             b = b.cast(a.type)
-        silent = _missing(a) | _missing(b)
+        # the new row lacks it; or only the new row has an annotation of the source
+        silent = _missing(a) | (_missing(b) & (name in ANNOTATION_COLUMNS))
         if pa.types.is_floating(a.type):
             a_f = a.to_numpy(zero_copy_only=False).astype(float)
             b_f = b.to_numpy(zero_copy_only=False).astype(float)
