@@ -8,8 +8,9 @@ import numpy as np
 import pandas as pd
 
 import sample_events
+from fusion.versions.fused_store import FusedStore
 from stations.store import StationMagnitudeStore
-from tests.cli.conftest import demo_slice, invoke
+from tests.cli.conftest import demo_slice, invoke, version_of, write_config
 
 _DECEMBER_XML = Path(sample_events.__file__).parent / "demo_network_2025_december.xml"
 
@@ -28,9 +29,23 @@ def _ingest_xml(store: Path, xml: Path) -> None:
     assert res.exit_code == 0, res.output
 
 
+def _fused(store: Path, config: Path) -> pd.Series:
+    res = invoke("fuse", "--store", store, "--config", config)
+    assert res.exit_code == 0, res.output
+    cur = FusedStore(store).current("ML")
+    return cur.set_index("event_id")["magnitude"].sort_index()
+
+
 def test_same_readings_from_quakeml_after_csv_are_not_revisions(tmp_path: Path) -> None:
     store, before = _december_store(tmp_path)
+    config = write_config(tmp_path / "fast.toml")
+    learned = invoke("learn", "--store", store, "--config", config)
+    assert learned.exit_code == 0, learned.output
+    adopt = invoke("adopt", version_of(learned), "--store", store, "--config", config)
+    assert adopt.exit_code == 0, adopt.output
+    fused_before = _fused(store, config)
     _ingest_xml(store, _DECEMBER_XML)
+    pd.testing.assert_series_equal(_fused(store, config), fused_before)
     s = StationMagnitudeStore.open(store)
     after = s.scan(magnitude_type="ML")
     assert len(after) == len(before)
