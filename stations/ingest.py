@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
+from stations.store.keys import decimals_of
 from stations.validation import DEFAULT_MAGNITUDE_RANGE, json_rows, rejected_frame
 
 if TYPE_CHECKING:
@@ -305,31 +306,6 @@ def recompute_window(
     report = store.ingest(changed, res.rejected, source_file=source, on_wait=on_wait)
     report = replace(report, duplicate=report.duplicate + int(same.sum()))
     return IngestOutcome(report, *counts)
-
-
-def decimals_of(values: np.ndarray, *, most: int = 9) -> np.ndarray:
-    """Decimal places each value was given with: the smallest d with round(x, d) == x.
-
-    Parameters
-    ----------
-    values : ndarray of float
-    most : int, default=9
-        Values with more places (computed values) get ``most``.
-
-    Returns
-    -------
-    ndarray of int
-        Places per value; ``most`` for NaN.
-    """
-    x = np.asarray(values, dtype=float)
-    out = np.full(x.shape, most, dtype=np.int64)
-    undecided = np.isfinite(x)
-    scale = np.maximum(np.abs(x), 1.0)
-    for d in range(most):  # loop over decimal places, not rows
-        hit = undecided & (np.abs(np.round(x, d) - x) <= 1e-9 * scale)
-        out[hit] = d
-        undecided &= ~hit
-    return out
 
 
 def unchanged_within_precision(new: pd.DataFrame, old: pd.DataFrame) -> np.ndarray:

@@ -81,6 +81,25 @@ def is_quakeml(path: Any) -> bool:
     return bool(_ROOT.search(text)) and _NAMESPACE in text
 
 
+def _clipped_by_comment(catalog: Any) -> dict[str, dict[str, Any]]:
+    """Station magnitudes whose amplitude carries a comment starting ``clipped``.
+
+    QuakeML 1.2 has no clipping flag; magfuse's own QuakeML (the demo's December) marks a
+    clipped amplitude with such a comment, so a re-read keeps ``clipped``.
+    """
+    out: dict[str, dict[str, Any]] = {}
+    for event in catalog:
+        clipped = {
+            str(a.resource_id)
+            for a in event.amplitudes
+            if any(str(c.text or "").strip().lower().startswith("clipped") for c in a.comments)
+        }
+        for sm in event.station_magnitudes:
+            if str(sm.amplitude_id) in clipped:
+                out[str(sm.resource_id)] = {"clipped": True}
+    return out
+
+
 def read_quakeml(
     path: Path | str,
     *,
@@ -116,7 +135,9 @@ def read_quakeml(
     catalog = read_catalog(
         path, "QUAKEML", shown, "check that it is well-formed QuakeML 1.2 (BED namespace)"
     )
-    candidates, raw = catalog_candidates(catalog, default_network=network)
+    candidates, raw = catalog_candidates(
+        catalog, default_network=network, overrides=_clipped_by_comment(catalog)
+    )
     records, rejected = validate_records(
         candidates, source_file=shown, raw=raw, magnitude_range=magnitude_range
     )

@@ -12,6 +12,20 @@ Pure functions on Arrow tables; nothing here touches the disk. The store calls t
 4. :func:`compare` matches the batch against the current revision of each key in the store:
    equal values (:data:`~stations.schema.VALUE_COLUMNS`, NaN equal to NaN) are duplicates, a
    changed value becomes revision ``previous + 1`` and supersedes the old row's position.
+
+Restatements are duplicates. A row that restates the stored reading of its key in a format
+that carries fewer values (e.g. QuakeML after CSV: no noise threshold, distances or azimuth)
+is a duplicate when every value it does carry agrees with the stored one, floating-point
+values within half a unit in the last decimal place of the stored value
+(:func:`~stations.store.keys.rows_restate`). It does not replace the fuller stored reading.
+Annotations of the source that only the restatement carries
+(:data:`~stations.store.keys.ANNOTATION_COLUMNS`: a QuakeML contribution weight, a formula
+name) are not merged into it: the stored reading stays exactly as it was, so
+fused magnitudes and the fusion catch-up are not disturbed by a file that says nothing new.
+The restating batch is still recorded in the manifest with its counts (its rows count as
+duplicates). A real change (a magnitude or amplitude beyond the stored precision, a flag
+flipped, a value that differs, a measured value such as a noise threshold where the stored
+row had none) is a revision as before.
 """
 
 from __future__ import annotations
@@ -34,7 +48,7 @@ from stations.schema import (
     MagnitudeType,
     accepted_types_text,
 )
-from stations.store.keys import row_codes, rows_equal
+from stations.store.keys import row_codes, rows_equal, rows_restate
 from stations.store.reading import FILE_NO, ROW, position_keys
 
 __all__ = [
@@ -250,7 +264,8 @@ class Comparison:
         Rows to write: new keys (revision 1) and changed values (previous revision + 1), with
         the input columns and ``revision`` (int32).
     duplicate : int
-        Rows equal to the current revision of their key (not written).
+        Rows equal to, or restating (module docstring), the current revision of their key
+        (not written).
     revised : int
         Rows of ``rows`` that are new revisions of an existing key.
     superseded : ndarray of int64
@@ -301,7 +316,9 @@ def compare(unique: pa.Table, current: pa.Table) -> Comparison:
     match = where[c_new]
     bi = np.flatnonzero(match >= 0)
     ei = match[bi]
-    equal = rows_equal(unique.take(bi), current.take(ei), VALUE_COLUMNS)
+    new_rows, stored_rows = unique.take(bi), current.take(ei)
+    equal = rows_equal(new_rows, stored_rows, VALUE_COLUMNS)
+    equal |= rows_restate(new_rows, stored_rows, VALUE_COLUMNS)
     rev_b, rev_e = bi[~equal], ei[~equal]
     old_rev = current.column("revision").to_numpy().astype(np.int32)
     revision[rev_b] = old_rev[rev_e] + 1

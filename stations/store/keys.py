@@ -17,7 +17,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from numpy.typing import NDArray
 
-__all__ = ["row_codes", "rows_equal"]
+__all__ = ["ANNOTATION_COLUMNS", "decimals_of", "row_codes", "rows_equal", "rows_restate"]
+
+#: Columns that annotate how the source used a reading rather than the reading itself: a
+#: value only a restatement gives here is not a change (and is not merged in).
+ANNOTATION_COLUMNS = ("source_weight", "formula")
 
 #: Largest combined code before it is compacted again (keeps the arithmetic inside int64).
 _CODE_LIMIT = 2**62
@@ -88,3 +92,70 @@ def rows_equal(left: pa.Table, right: pa.Table, columns: Sequence[str]) -> NDArr
         )
         same &= pc.or_(eq, both_missing).to_numpy(zero_copy_only=False)
     return same
+
+
+def decimals_of(values: NDArray[np.float64], *, most: int = 9) -> NDArray[np.int64]:
+    """Decimal places each value was given with: the smallest d with round(x, d) == x.
+
+    Parameters
+    ----------
+    values : ndarray of float
+    most : int, default=9
+        Values with more places (computed values) get ``most``.
+
+    Returns
+    -------
+    ndarray of int
+        Places per value; ``most`` for NaN.
+    """
+    x = np.asarray(values, dtype=float)
+    out = np.full(x.shape, most, dtype=np.int64)
+    undecided = np.isfinite(x)
+    scale = np.maximum(np.abs(x), 1.0)
+    for d in range(most):  # loop over decimal places, not rows
+        hit = undecided & (np.abs(np.round(x, d) - x) <= 1e-9 * scale)
+        out[hit] = d
+        undecided &= ~hit
+    return out
+
+
+def _missing(arr: pa.ChunkedArray | pa.Array) -> NDArray[np.bool_]:
+    floating = pa.types.is_floating(arr.type)
+    return np.asarray(pc.is_null(arr, nan_is_null=floating).to_numpy(zero_copy_only=False))
+
+
+def rows_restate(new: pa.Table, stored: pa.Table, columns: Sequence[str]) -> NDArray[np.bool_]:
+    """Rows of ``new`` that restate the aligned row of ``stored`` and add no change to it.
+
+    A row restates its stored reading when every value it carries agrees with the stored one:
+    floating-point values within half a unit in the last decimal place of the stored value
+    (a magnitude stored as ``4.337`` takes any value within 0.0005; the source rounded it to
+    three places), other values exactly. A value the new row lacks (null or NaN) says nothing
+    and never counts as a change. A value the stored row lacks and the new row gives is a
+    change (e.g. a noise threshold added later), except for :data:`ANNOTATION_COLUMNS`
+    (see the store's duplicate rule in :mod:`stations.store.batch`).
+
+    Returns
+    -------
+    ndarray of bool, shape (n_rows,)
+    """
+    if new.num_rows != stored.num_rows:
+        raise ValueError("rows_restate: tables differ in length")
+    ok = np.ones(new.num_rows, dtype=bool)
+    for name in columns:  # loop over columns, not rows
+        a = new.column(name)
+        b = stored.column(name)
+        if not a.type.equals(b.type):
+            b = b.cast(a.type)
+        # the new row lacks it; or only the new row has an annotation of the source
+        silent = _missing(a) | (_missing(b) & (name in ANNOTATION_COLUMNS))
+        if pa.types.is_floating(a.type):
+            a_f = a.to_numpy(zero_copy_only=False).astype(float)
+            b_f = b.to_numpy(zero_copy_only=False).astype(float)
+            tol = 0.5 * 10.0 ** -decimals_of(b_f).astype(float) + 1e-12
+            with np.errstate(invalid="ignore"):
+                agree = np.abs(a_f - b_f) <= tol
+        else:
+            agree = np.asarray(pc.fill_null(pc.equal(a, b), False).to_numpy(zero_copy_only=False))
+        ok &= silent | agree
+    return ok

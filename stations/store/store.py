@@ -776,10 +776,12 @@ class StationMagnitudeStore:
 
         The batch is committed atomically or not at all. Rows equal to the current revision
         of their key (:data:`~stations.schema.RECORD_KEY`; values
-        :data:`~stations.schema.VALUE_COLUMNS`, NaN equal to NaN) are duplicates; a changed
-        value becomes the next revision and the previous one stays readable with
-        ``all_revisions``. Rejected rows, rows the store cannot keep and keys with conflicting
-        values inside the batch go to quarantine in the same commit.
+        :data:`~stations.schema.VALUE_COLUMNS`, NaN equal to NaN) are duplicates, and so are
+        rows that only restate it with fewer values (every value they carry agrees within
+        the stored precision; source annotations only they carry are not merged in; see
+        :mod:`stations.store.batch`); a changed value becomes the next revision and the previous
+        one stays readable with ``all_revisions``. Rejected rows, rows the store cannot keep
+        and keys with conflicting values inside the batch go to quarantine in the same commit.
 
         Parameters
         ----------
