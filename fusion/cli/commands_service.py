@@ -45,6 +45,7 @@ def serve_command(
 
     cfg = load(config)
     st = open_store(cfg, store, create=False)
+    print_advisory()  # once at start: the server runs until it is stopped
     serve(
         st.root,
         config,

@@ -838,7 +838,11 @@ def _pair_rows(pairs: pd.DataFrame, order: NDArray[np.int64]) -> str:
             ("station 2", text("station_l"), True),
             ("shared events", num("n_shared", ".0f"), False),
             ("error correlation", num("rho_hat", "+.2f"), False),
-            ("95 % interval", np.where(lo != "", "[" + lo + ", " + hi + "]", ""), False),
+            (
+                "correlation interval (95 %)",
+                np.where(lo != "", "[" + lo + ", " + hi + "]", ""),
+                False,
+            ),
             ("test statistic", num("statistic", "+.2f"), False),
             ("p", num("p_value", ".2g"), False),
             ("q", num("q_value", ".2g"), False),
@@ -936,7 +940,7 @@ def _censoring_text(ev: pd.DataFrame) -> str:
         return ""
     text = (
         f"Non-detections: {c['n_used']} of {c['n_events']} events were re-estimated with the "
-        f"censored likelihood, using {c['n_nondetections']} non-detections (docs/censoring.md §3)."
+        f"censored likelihood, using {c['n_nondetections']} non-detections (docs/censoring.md)."
     )
     sh = c["shift"]
     if "median" in sh:

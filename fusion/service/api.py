@@ -232,9 +232,12 @@ def events(
     dependencies=READ,
     summary="One event explained (as 'magfuse event --json') with its recorded magnitude.",
 )
-def event(request: Request, event_id: EventIdPath, type: TypeQuery = None) -> dict[str, Any]:
+def event(
+    request: Request, event_id: EventIdPath, type: TypeQuery = None, recompute: bool = False
+) -> dict[str, Any]:
+    """The recorded network magnitude; ``recompute=true`` adds the active model's value now."""
     state = _state(request)
-    return state.event(event_id, _mtype(state, type) if type else None)
+    return state.event(event_id, _mtype(state, type) if type else None, recompute=recompute)
 
 
 # -- models ------------------------------------------------------------------------------------

@@ -203,8 +203,9 @@ class ServiceState:
         self.tokens: TokenBook = TokenBook(store.root, lock=store.write_lock)
         self.hub = UpdateHub()
         self.started = time.time()
-        self._event_cache: dict[tuple[str, str | None], tuple[tuple[Any, ...], dict[str, Any]]]
-        self._event_cache = {}
+        self._event_cache: dict[
+            tuple[str, str | None, bool], tuple[tuple[Any, ...], dict[str, Any]]
+        ] = {}
         self._cache_lock = threading.Lock()
         self._cache_seq = 0
         self._cleared_at = 0
@@ -386,7 +387,9 @@ class ServiceState:
         root = self.registry.root
         return sorted(p.name for p in root.glob("*") if p.is_dir()) if root.is_dir() else []
 
-    def event(self, event_id: str, magnitude_type: str | None) -> dict[str, Any]:
+    def event(
+        self, event_id: str, magnitude_type: str | None, *, recompute: bool = False
+    ) -> dict[str, Any]:
         """``magfuse event --json`` of one event, plus its stored (recorded) network magnitude.
 
         Explanations are cached per event and model version. A submission through this service
@@ -400,14 +403,19 @@ class ServiceState:
             self._forget(None, commits)
         types = [magnitude_type] if magnitude_type else self.model_types()
         active = tuple(self.registry.active_id(t) for t in types)
-        key = (event_id, magnitude_type)
+        key = (event_id, magnitude_type, recompute)
         with self._cache_lock:
             hit = self._event_cache.get(key)
             started = self._cache_seq
         if hit is not None and hit[0] == active:
             return hit[1]
         ex = explain_event(
-            self.store, self.registry, self.cfg, event_id, magnitude_type=magnitude_type
+            self.store,
+            self.registry,
+            self.cfg,
+            event_id,
+            magnitude_type=magnitude_type,
+            recompute=recompute,
         )
         body = to_jsonable(ex.to_dict())
         stored = self.fused.current(ex.estimate.magnitude_type, event_ids=[event_id])

@@ -12,7 +12,7 @@ two are compared:
 - per event: the distribution of magnitude changes and the ``top`` events that move most,
   each with the stations whose weights moved most in it (the reason);
 - the use of non-detections before and after (:func:`censoring_summary`): how many events
-  were re-estimated with them (docs/censoring.md §3), how many non-detections they used, and the
+  were re-estimated with them (docs/censoring.md), how many non-detections they used, and the
   distribution of the shift censored − GLS magnitude; events left uncorrected or flagged
   likely biased high.
 
@@ -204,7 +204,7 @@ def _censoring_lines(cens: dict[str, Any]) -> list[str]:
     after = cens.get("after")
     if not after:
         return []
-    lines = ["", "non-detections (censored likelihood, docs/censoring.md §3):"]
+    lines = ["", "non-detections (censored likelihood, docs/censoring.md):"]
     for label in ("before", "after"):
         c = cens.get(label)
         if not c:
