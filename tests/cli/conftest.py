@@ -26,7 +26,7 @@ from fusion.advisory import ADVISORY
 from fusion.cli.app import app
 from tests.datasets import DATA_DIR
 
-#: The open-data folder next to the repository (``../shared/data``); read in place, never copied.
+#: The committed open-data folder (``tests/data``, licence and provenance beside each set).
 SHARED_DATA = DATA_DIR
 
 #: The advisory caution as the commands print it on stderr.

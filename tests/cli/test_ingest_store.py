@@ -143,7 +143,6 @@ def test_store_summary_of_a_missing_store(tmp_path: Path) -> None:
     assert not (tmp_path / "nowhere").exists()  # a summary never creates a store
 
 
-@pytest.mark.skipif(not YELLOWSTONE.exists(), reason=f"open data set not found at {YELLOWSTONE}")
 def test_ingest_the_yellowstone_table(tmp_path: Path) -> None:
     """Real data (Holt, Pechmann & Koper 2022): its README counts 7,728 rows and 20 stations."""
     store = tmp_path / "store"

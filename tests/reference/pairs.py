@@ -74,7 +74,7 @@ def siegmund_arl0(k: float, h: float) -> float:
 
 
 # --- Yellowstone ML (Holt, Pechmann & Koper 2022, BSSA 112(2):905–920), data set of ------------
-# /work/shared/data/yellowstone-uuss (MIT). Station WY.YNR: the network's station correction
+# tests/data/yellowstone-uuss (MIT). Station WY.YNR: the network's station correction
 # `Corr` is 0.00 for readings up to 2009-01-01 10:13 and 0.35 from 2009-01-02 01:21 (read from the
 # file: 136 and 817 rows). Its published station ML (`SML`, correction included) therefore steps
 # by +0.35 between the two; the uncorrected SML − Corr does not. Status: verified (read from the

@@ -141,8 +141,6 @@ def test_hypocentral_distance() -> None:
 
 def test_yellowstone_rhyp_is_the_right_triangle_of_repi_and_depth() -> None:
     """Real data (Holt et al. 2022): Rhyp = sqrt(Repi^2 + EqDep^2) on all 7,728 rows."""
-    if not YELLOWSTONE.is_file():
-        pytest.skip(f"Yellowstone amplitude table not found at {YELLOWSTONE}")
     table = pd.read_csv(YELLOWSTONE, usecols=["Repi", "EqDep", "Rhyp"])
     np.testing.assert_allclose(
         hypocentral_distance_km(table["Repi"], table["EqDep"]),

@@ -528,7 +528,6 @@ def test_event_ids_round_trip_and_fit_the_quakeml_pattern(event_id: str) -> None
         assert rid == event_id
 
 
-@pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")
 def test_quakeml_of_yellowstone_events_matches_the_published_table(tmp_path: Path) -> None:
     """UUSS Yellowstone (Holt et al. 2022): fuse 60 events with zero biases and equal σ, so
     the network ML is the mean of SML − Corr; the QuakeML has the published epicentre, depth

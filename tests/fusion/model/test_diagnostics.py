@@ -93,7 +93,6 @@ def test_false_flag_rate_matches_student_t() -> None:
     assert chance_flag_rate(np.array([2, 1, 0])) == 0.0
 
 
-@pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")
 def test_yellowstone_station_trends_match_statsmodels() -> None:
     """Real data (UUSS Yellowstone, Holt et al. 2022): the network's corrected station ML
     minus its event ML against log10 epicentral distance, per station, equals statsmodels

@@ -404,7 +404,6 @@ def _plug_in_z(obs: ObservationSet) -> NDArray[np.float64]:
     return g.loo_z
 
 
-@pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")
 def test_yellowstone_correction_change_is_found_in_published_station_ml() -> None:
     # Real data (tests/reference/pairs.py): WY.YNR's network correction went from 0.00 to 0.35
     # on 2009-01-02, so its published station ML steps up by 0.35 there while the uncorrected

@@ -243,7 +243,6 @@ def test_censoring_shows_as_residual_skewness_at_small_magnitude() -> None:
 # -- real data: Yellowstone ML (Holt, Pechmann & Koper 2022) ----------------------------------
 
 
-@pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")
 def test_yellowstone_held_out_check_flags_the_network_correction_table() -> None:
     # Real data (Holt, Pechmann & Koper 2022 data set; Corr fixed for every station from 2014):
     # scoring the network's own station corrections (b = −Corr) by held-out prediction of the

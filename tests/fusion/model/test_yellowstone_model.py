@@ -1,8 +1,8 @@
 """The station model on real open data: UUSS Yellowstone station ML, 1998-2020.
 
 Data: ``station_ml_geobalanced.csv`` of Holt, Pechmann & Koper (2022), BSSA 112(2):905-920,
-doi:10.1785/0120210240 (MIT licence; ``../shared/data/yellowstone-uuss/README.md``), read in
-place and ingested with the ``yellowstone`` reader, which stores SML − Corr, the station ML
+doi:10.1785/0120210240 (MIT licence; ``tests/data/yellowstone-uuss/README.md``), read from
+``tests/data`` and ingested with the ``yellowstone`` reader, which stores SML − Corr, the station ML
 before the network's station correction. Nothing here knows a true event magnitude; the checks
 are the label-free ones of docs/validation.md and two outside comparisons:
 
@@ -45,10 +45,6 @@ from tests.datasets import YELLOWSTONE
 
 DATA = YELLOWSTONE
 TABLE = DATA / "station_ml_geobalanced.csv"
-
-pytestmark = pytest.mark.skipif(
-    not TABLE.is_file(), reason=f"open data file {TABLE} is absent (read in place, never copied)"
-)
 
 #: Stations compared one by one: at least this many readings over the 22 years.
 MIN_EVENTS = 100

@@ -760,7 +760,6 @@ def test_network_estimate_object(e1: FusedMagnitudes) -> None:
 # -- real data --------------------------------------------------------------------------------
 
 
-@pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")
 def test_yellowstone_network_corrections_reproduce_station_ml_means() -> None:
     """UUSS Yellowstone (Holt et al. 2022 data): with b̂ = −Corr (the network's own station
     corrections, two epochs for five stations) and equal σ, the fused magnitude equals the

@@ -24,8 +24,6 @@ from tests.datasets import YELLOWSTONE
 DATA = YELLOWSTONE
 NAT = np.datetime64("NaT", "us")
 
-pytestmark = pytest.mark.skipif(not DATA.is_dir(), reason=f"open data folder {DATA} is absent")
-
 
 @pytest.fixture(scope="module")
 def uuss() -> tuple[pd.DataFrame, object]:

@@ -230,7 +230,6 @@ def test_manifest_problems(tmp_path: Path) -> None:
         store.summary()
 
 
-@pytest.mark.skipif(not YELLOWSTONE.exists(), reason=f"open data set not found at {YELLOWSTONE}")
 def test_yellowstone_table_round_trip(tmp_path: Path) -> None:
     """Real data: Holt, Pechmann & Koper (2022), UUSS Yellowstone station MLs.
 
